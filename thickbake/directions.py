@@ -1,0 +1,205 @@
+"""Directions stage: ray directions around the inward normal, low-discrepancy and reproducible.
+
+Samplers come as a trio: :func:`sample_lobe` maps uniform variates ``u ∈ [0, 1)²`` to unit vectors in
+a local frame whose +z axis is the lobe axis, :func:`lobe_pdf` is their density over solid angle and
+:func:`lobe_inverse` maps directions back to ``u``.
+
+Lobes, for a cone of half-angle α around +z (c = cos α), with φ = 2π·u₂:
+
+* ``uniform`` over the cone's solid angle 2π(1 − c): cosθ = 1 − u₁(1 − c); pdf = 1 / (2π(1 − c)).
+* ``cosine`` (pdf ∝ cosθ): sin²θ = u₁·sin²α, i.e. Malley's method — points uniform on the disk of
+  radius sin α projected up to the hemisphere; pdf = cosθ / (π sin²α).  With α = 90° this is the
+  cosine-weighted hemisphere, pdf = cosθ/π (Pharr, Jakob & Humphreys, *Physically Based Rendering*,
+  4th ed., §A.5 "Sampling the cosine-weighted hemisphere").
+
+The polar form (r = √u₁, φ = 2πu₂) is used rather than the concentric disk map: it keeps u₁ a
+function of θ alone, so a 1-D stratification of u₁ stratifies the polar angle exactly.
+
+Reproducibility
+---------------
+Every sample (texel, sub-position, triangle) has a 64-bit key.  The base set is the first n points of
+one scrambled Sobol sequence (scipy.stats.qmc.Sobol, seeded by ``seed``); each sample adds its own
+Cranley–Patterson offset, a hash of (seed, key), modulo 1 (Cranley & Patterson, SIAM J. Numer. Anal.
+13:904, 1976), which keeps the set's low discrepancy and decorrelates neighbouring texels.  Nothing
+depends on chunking, thread count or order.  ``sequence="random"`` instead hashes (seed, key, ray
+index) into independent uniform variates — for comparisons only.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+
+import numpy as np
+
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+_M1 = np.uint64(0xBF58476D1CE4E5B9)
+_M2 = np.uint64(0x94D049BB133111EB)
+_TWO_M53 = 1.0 / (1 << 53)
+
+
+def splitmix64(x: np.ndarray) -> np.ndarray:
+    """The splitmix64 finaliser (Steele, Lea & Flood, OOPSLA 2014) applied elementwise to uint64."""
+    with np.errstate(over="ignore"):
+        z = x + _GOLDEN
+        z = (z ^ (z >> np.uint64(30))) * _M1
+        z = (z ^ (z >> np.uint64(27))) * _M2
+        return z ^ (z >> np.uint64(31))
+
+
+def sample_keys(texel: np.ndarray, sub: np.ndarray, face: np.ndarray) -> np.ndarray:
+    """(n,) uint64 key of each surface sample from its texel, sub-position and triangle indices."""
+    with np.errstate(over="ignore"):
+        k = splitmix64(texel.astype(np.uint64) * np.uint64(1 << 8) + sub.astype(np.uint64))
+        return splitmix64(k ^ splitmix64(face.astype(np.uint64) + np.uint64(0xA5A5A5A5)))
+
+
+def hash_uniform2(seed: int, keys: np.ndarray) -> np.ndarray:
+    """(n, 2) float64 uniform variates in [0, 1) from (seed, key), two independent streams."""
+    with np.errstate(over="ignore"):
+        base = splitmix64(keys ^ splitmix64(np.uint64(seed) + np.zeros(1, np.uint64)))
+        h1 = splitmix64(base)
+        h2 = splitmix64(base ^ np.uint64(0xD1B54A32D192ED03))
+    return np.stack([(h1 >> np.uint64(11)) * _TWO_M53, (h2 >> np.uint64(11)) * _TWO_M53], axis=-1)
+
+
+@functools.lru_cache(maxsize=16)
+def _sobol_cached(count_log2: int, seed: int) -> np.ndarray:
+    from scipy.stats import qmc
+
+    points = qmc.Sobol(d=2, scramble=True, rng=np.random.default_rng(seed)).random_base2(count_log2)
+    points.setflags(write=False)
+    return points
+
+
+def base_points(count: int, seed: int) -> np.ndarray:
+    """(count, 2) float64: the first ``count`` points of the seeded scrambled Sobol sequence.
+
+    Prefixes are nested (the first 16 of a 64-point set are the 16-point set), which adaptive
+    sampling relies on; power-of-two counts are balanced (0, m, 2)-nets.
+    """
+    m = max(0, math.ceil(math.log2(max(count, 1))))
+    return _sobol_cached(m, int(seed))[:count]
+
+
+def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequence: str) -> np.ndarray:
+    """(n, k, 2) float32 uniform variates for rays ``ray_start … ray_stop−1`` of each sample.
+
+    Parameters
+    ----------
+    seed : int
+    keys : (n,) uint64
+        Sample keys from :func:`sample_keys`.
+    ray_start, ray_stop : int
+        Range of ray indices within each sample's sequence (k = stop − start).
+    sequence : {"sobol", "random"}
+    """
+    k = ray_stop - ray_start
+    if sequence == "sobol":
+        base = base_points(ray_stop, seed)[ray_start:ray_stop].astype(np.float32)
+        offset = hash_uniform2(seed, keys).astype(np.float32)
+        u = base[None, :, :] + offset[:, None, :]
+        u -= (u >= 1.0)
+        return u
+    ray = np.arange(ray_start, ray_stop, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        ray_keys = splitmix64(keys[:, None] * np.uint64(0x100000001B3) + ray[None, :])
+    return hash_uniform2(seed ^ 0x5EED, ray_keys.reshape(-1)).reshape(len(keys), k, 2).astype(np.float32)
+
+
+def sample_lobe(u: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
+    """Map (…, 2) variates to (…, 3) unit directions in the local frame (+z = lobe axis).
+
+    Parameters
+    ----------
+    u : (..., 2) float
+        Uniform variates in [0, 1).
+    cone_deg : float
+        Cone half-angle α in degrees, 0 … 90.
+    lobe : {"cosine", "uniform"}
+
+    Examples
+    --------
+    >>> d = sample_lobe(np.array([[0.0, 0.0]]), 90.0, "cosine")
+    >>> np.allclose(d, [[0, 0, 1]])
+    True
+    """
+    u1 = u[..., 0]
+    alpha = math.radians(cone_deg)
+    if lobe == "cosine":
+        sin2 = u1 * np.float32(math.sin(alpha) ** 2)
+        cos_t = np.sqrt(np.maximum(1 - sin2, 0))
+    elif lobe == "uniform":
+        cos_t = 1 - u1 * np.float32(1 - math.cos(alpha))
+        sin2 = np.maximum(1 - cos_t * cos_t, 0)
+    else:
+        raise ValueError(f"unknown lobe {lobe!r}")
+    sin_t = np.sqrt(sin2)
+    phi = u[..., 1] * np.float32(2 * math.pi)
+    out = np.empty(u.shape[:-1] + (3,), dtype=u.dtype)
+    out[..., 0] = sin_t * np.cos(phi)
+    out[..., 1] = sin_t * np.sin(phi)
+    out[..., 2] = cos_t
+    return out
+
+
+def lobe_pdf(directions: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
+    """Solid-angle density (…,) of local directions (…, 3) under the lobe; 0 outside the cone."""
+    alpha = math.radians(cone_deg)
+    cos_t = directions[..., 2]
+    inside = cos_t >= math.cos(alpha) - 1e-12
+    if lobe == "cosine":
+        pdf = cos_t / (math.pi * math.sin(alpha) ** 2)
+    else:
+        pdf = np.full_like(cos_t, 1.0 / (2 * math.pi * (1 - math.cos(alpha))))
+    return np.where(inside, pdf, 0.0)
+
+
+def lobe_inverse(directions: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
+    """Inverse of :func:`sample_lobe`: (…, 3) local directions → (…, 2) variates in [0, 1)."""
+    alpha = math.radians(cone_deg)
+    cos_t = np.clip(directions[..., 2], -1, 1)
+    if lobe == "cosine":
+        u1 = (1 - cos_t * cos_t) / math.sin(alpha) ** 2
+    else:
+        u1 = (1 - cos_t) / (1 - math.cos(alpha))
+    phi = np.arctan2(directions[..., 1], directions[..., 0])
+    u2 = np.mod(phi / (2 * math.pi), 1.0)
+    return np.stack([u1, u2], axis=-1)
+
+
+def orthonormal_frames(normals: np.ndarray):
+    """Tangent and bitangent completing each unit normal to a right-handed frame.
+
+    Branchless construction of Duff, Burgess, Christensen, Hery, Kensler, Liani & Villemin,
+    "Building an Orthonormal Basis, Revisited", JCGT 6(1), 2017.
+
+    Parameters
+    ----------
+    normals : (n, 3) float
+        Unit vectors.
+
+    Returns
+    -------
+    tangent, bitangent : (n, 3) each, same dtype
+    """
+    x, y, z = normals[:, 0], normals[:, 1], normals[:, 2]
+    sign = np.where(z >= 0, 1.0, -1.0).astype(normals.dtype)
+    a = -1.0 / (sign + z)
+    b = x * y * a
+    tangent = np.stack([1 + sign * x * x * a, sign * b, -sign * x], axis=1)
+    bitangent = np.stack([b, sign + y * y * a, -y], axis=1)
+    return tangent, bitangent
+
+
+def world_directions(local: np.ndarray, axis: np.ndarray) -> np.ndarray:
+    """Rotate (n, k, 3) local directions so local +z maps onto each sample's (n, 3) unit ``axis``.
+
+    Returns (n·k, 3) float32, C-contiguous, ready for the ray engine.
+    """
+    axis = axis.astype(np.float32)
+    tangent, bitangent = orthonormal_frames(axis)
+    out = (local[..., 0:1] * tangent[:, None, :]
+           + local[..., 1:2] * bitangent[:, None, :]
+           + local[..., 2:3] * axis[:, None, :])
+    return np.ascontiguousarray(out.reshape(-1, 3), dtype=np.float32)

@@ -1,0 +1,295 @@
+"""One validated settings object shared by the API, the command line and batch rules files.
+
+:class:`BakeSettings` is built once (from keyword arguments, parsed options or a TOML table) and then
+passed down; no stage of the bake reads the command line or globals.  Every length is in *scene units*
+(the units of the mesh's world-space coordinates, after node transforms).  Options that default to a
+size relative to the mesh (``reach``, ``bias``, ``attenuation_distance``) stay ``None`` here and are
+resolved against the mesh's bounding box by :meth:`BakeSettings.resolve`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import math
+import os
+from dataclasses import dataclass, fields
+from typing import Any
+
+from .errors import ThickbakeError
+
+MEASURES = ("thickness", "transmittance", "occlusion")
+LOBES = ("cosine", "uniform")
+SEQUENCES = ("sobol", "random")
+ORDERS = ("morton", "rows")
+
+#: Default reach for ``thickness``/``transmittance``: the bounding-box diagonal, longer than any chord
+#: of the mesh, so no inward ray of a closed mesh is clipped.
+REACH_DIAGONAL_FRACTION = 1.0
+#: Default reach for ``occlusion``: a quarter of the bounding-box diagonal.  On a closed mesh every
+#: inward ray hits something, so the hit fraction only varies when the reach is shorter than the
+#: thick parts; a quarter of the diagonal separates thin features (ears, leaves, rims) from the body
+#: on typical props.  Common practice, no published source.
+OCCLUSION_REACH_DIAGONAL_FRACTION = 0.25
+#: Default inward origin offset as a fraction of the bounding-box diagonal.  float32 positions carry a
+#: relative rounding error of ~6e-8, so 1e-4 of the diagonal clears self-hits with three orders of
+#: magnitude to spare while staying far below any thickness worth baking.
+BIAS_DIAGONAL_FRACTION = 1e-4
+#: Refuse bakes whose maps would need more memory than this (estimated by :func:`estimate_bytes`).
+MEMORY_CAP_BYTES = 8 * 1024**3
+#: Largest accepted side of a map, in texels.
+MAX_SIDE = 32768
+
+
+def default_pad(width: int, height: int) -> int:
+    """Default seam padding in texels: max(2, longest side / 256).
+
+    4 texels at 1024², 16 at 4096² — enough that the coarser mip levels a real-time renderer samples
+    do not blend the background into island borders.  Common practice, no published source.
+    """
+    return max(2, max(width, height) // 256)
+
+
+def estimate_bytes(width: int, height: int, chunk_rays: int) -> int:
+    """Rough peak memory of a bake in bytes.
+
+    Per texel the bake holds the float32 map, the float32 standard-error map, float64 accumulators
+    for padding/encoding and a few masks (~40 bytes); per ray in flight, origins, directions and
+    distances in float32 plus float64 temporaries (~80 bytes).
+    """
+    return int(width) * int(height) * 40 + int(chunk_rays) * 80
+
+
+def parse_size(text: str | int | tuple | list) -> tuple[int, int]:
+    """Parse ``1024``, ``"1024"``, ``"2048x1024"`` or ``(2048, 1024)`` into (width, height)."""
+    if isinstance(text, (tuple, list)):
+        if len(text) != 2:
+            raise ThickbakeError(f"size {text!r} must be N or [WIDTH, HEIGHT]", fix="e.g. size = 1024")
+        width, height = text
+    elif isinstance(text, int) and not isinstance(text, bool):
+        width = height = text
+    elif isinstance(text, str):
+        parts = text.lower().replace("×", "x").split("x")
+        try:
+            nums = [int(p) for p in parts]
+        except ValueError:
+            raise ThickbakeError(f"size {text!r} is not a number", fix="give N or WIDTHxHEIGHT, e.g. 1024 or 2048x1024") from None
+        if len(nums) == 1:
+            width = height = nums[0]
+        elif len(nums) == 2:
+            width, height = nums
+        else:
+            raise ThickbakeError(f"size {text!r} has too many parts", fix="give N or WIDTHxHEIGHT, e.g. 2048x1024")
+    else:
+        raise ThickbakeError(f"size {text!r} is not a number", fix="give N or WIDTHxHEIGHT, e.g. 1024")
+    for side in (width, height):
+        if isinstance(side, bool) or not isinstance(side, int) or side <= 0:
+            raise ThickbakeError(f"size {text!r} must be positive whole numbers of texels", fix="e.g. 1024 or 2048x1024")
+        if side > MAX_SIDE:
+            raise ThickbakeError(f"size {text!r} is larger than {MAX_SIDE} texels per side", fix="bake a smaller map")
+    return int(width), int(height)
+
+
+@dataclass(frozen=True)
+class BakeSettings:
+    """Everything that decides the content of a baked map.
+
+    All lengths are in scene units.  ``None`` means "relative to the mesh" and is resolved by
+    :meth:`resolve`; a resolved copy is what the sidecar records.
+
+    Attributes
+    ----------
+    size : (int, int)
+        Map width and height in texels (``1024`` → (1024, 1024); ``"2048x1024"`` is accepted).
+    rays : int
+        Rays per surface sample (the cap when ``target_error`` is set).  Powers of two keep the
+        low-discrepancy set balanced.
+    cone : float
+        Half-angle in degrees of the cone of directions around the inward normal: 0 casts exactly
+        along −N, 90 covers the whole hemisphere.
+    lobe : {"cosine", "uniform"}
+        Distribution of directions within the cone: cosine-weighted (pdf ∝ cosθ) or uniform over
+        solid angle.
+    measure : {"thickness", "transmittance", "occlusion"}
+        ``thickness``: mean of min(hit distance, reach), scene units.  ``transmittance``: mean of
+        exp(−d / attenuation_distance), Beer–Lambert.  ``occlusion``: fraction of rays that hit
+        within reach (ambient occlusion of the inward-facing surface).
+    reach : float or None
+        Longest distance a ray may travel; misses count as ``reach``.  Default: the bounding-box
+        diagonal for thickness/transmittance, a quarter of it for occlusion.
+    attenuation_distance : float or None
+        Beer–Lambert distance L (the glTF KHR_materials_volume ``attenuationDistance``): light
+        falls to 1/e after L.  Default: a tenth of the bounding-box diagonal.
+    invert : bool
+        Store 1 − value (bright = thin).
+    supersample : int
+        K: K×K stratified surface samples per texel (cost × K²).
+    pad : int or "fill" or None
+        Seam padding in texels, or "fill" for every empty texel; None → :func:`default_pad`.
+    bits : {8, 16}
+        Bit depth of PNG output.
+    seed : int
+        Seed of every random stream; the same seed gives bit-identical maps.
+    threads : int or None
+        Worker threads; None → all cores.  Does not change the result.
+    bias : float or None
+        Inward origin offset in scene units; None → 1e-4 × bounding-box diagonal.
+    sequence : {"sobol", "random"}
+        Directions from a scrambled Sobol set with a per-sample Cranley–Patterson rotation, or
+        independent uniform random numbers (for comparison only).
+    target_error : float or None
+        Adaptive mode: stop adding rays to a sample once the standard error of its mean is at most
+        this (measure units); ``rays`` is the cap.
+    chunk_rays : int
+        Rays held in memory per work item; bounds memory and sets the thread-pool grain.
+    order : {"morton", "rows"}
+        Order of texels within a work item (Z-order keeps neighbouring rays coherent).
+    """
+
+    size: tuple[int, int] = (1024, 1024)
+    rays: int = 64
+    cone: float = 90.0
+    lobe: str = "cosine"
+    measure: str = "thickness"
+    reach: float | None = None
+    attenuation_distance: float | None = None
+    invert: bool = False
+    supersample: int = 1
+    pad: int | str | None = None
+    bits: int = 16
+    seed: int = 0
+    threads: int | None = None
+    bias: float | None = None
+    sequence: str = "sobol"
+    target_error: float | None = None
+    chunk_rays: int = 1 << 20
+    order: str = "morton"
+
+    def __post_init__(self):
+        object.__setattr__(self, "size", parse_size(self.size))
+        _check_int(self, "rays", 1, 1 << 16)
+        _check_float(self, "cone", 0.0, 90.0, inclusive_low=True)
+        _check_choice(self, "lobe", LOBES)
+        _check_choice(self, "measure", MEASURES)
+        _check_optional_positive(self, "reach")
+        _check_optional_positive(self, "attenuation_distance")
+        if not isinstance(self.invert, bool):
+            raise _bad("invert", self.invert, "true or false")
+        _check_int(self, "supersample", 1, 16)
+        if self.pad is not None and self.pad != "fill":
+            if isinstance(self.pad, str) and self.pad.isdigit():
+                object.__setattr__(self, "pad", int(self.pad))
+            if isinstance(self.pad, bool) or not isinstance(self.pad, int) or self.pad < 0:
+                raise _bad("pad", self.pad, "a number of texels ≥ 0 or 'fill'")
+        if self.bits not in (8, 16) or isinstance(self.bits, bool):
+            raise _bad("bits", self.bits, "8 or 16")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise _bad("seed", self.seed, "a whole number ≥ 0")
+        if self.threads is not None:
+            _check_int(self, "threads", 1, 1024)
+        if self.bias is not None:
+            _check_float(self, "bias", 0.0, math.inf, inclusive_low=True)
+        _check_choice(self, "sequence", SEQUENCES)
+        _check_optional_positive(self, "target_error")
+        _check_int(self, "chunk_rays", 1024, 1 << 28)
+        _check_choice(self, "order", ORDERS)
+        est = estimate_bytes(*self.size, self.chunk_rays)
+        if est > MEMORY_CAP_BYTES:
+            raise ThickbakeError(
+                f"a {self.size[0]}x{self.size[1]} map needs about {est / 1024**3:.1f} GiB, over the "
+                f"{MEMORY_CAP_BYTES / 1024**3:.0f} GiB cap",
+                fix="bake a smaller size (4096x4096 needs about 0.7 GiB)",
+            )
+
+    # ------------------------------------------------------------------ construction helpers
+    @classmethod
+    def from_mapping(cls, values: dict[str, Any], where: str = "settings") -> "BakeSettings":
+        """Build from a mapping (TOML table, JSON, keyword arguments), naming unknown keys."""
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(values) - names)
+        if unknown:
+            raise ThickbakeError(
+                f"unknown setting {', '.join(repr(k) for k in unknown)} in {where}",
+                fix=f"allowed settings: {', '.join(sorted(names))}",
+            )
+        return cls(**values)
+
+    def replace(self, **changes) -> "BakeSettings":
+        """A copy with some fields changed (validated again)."""
+        return dataclasses.replace(self, **changes)
+
+    @property
+    def width(self) -> int:
+        return self.size[0]
+
+    @property
+    def height(self) -> int:
+        return self.size[1]
+
+    def resolve(self, diagonal: float) -> "BakeSettings":
+        """Fill the mesh-relative defaults from the bounding-box diagonal (scene units)."""
+        if not (diagonal > 0 and math.isfinite(diagonal)):
+            raise ThickbakeError("the mesh's bounding box is empty", fix="check the file has geometry")
+        changes: dict[str, Any] = {}
+        if self.reach is None:
+            frac = OCCLUSION_REACH_DIAGONAL_FRACTION if self.measure == "occlusion" else REACH_DIAGONAL_FRACTION
+            changes["reach"] = float(diagonal * frac)
+        if self.bias is None:
+            changes["bias"] = float(diagonal * BIAS_DIAGONAL_FRACTION)
+        if self.attenuation_distance is None and self.measure == "transmittance":
+            changes["attenuation_distance"] = float(diagonal * 0.1)
+        if self.pad is None:
+            changes["pad"] = default_pad(*self.size)
+        if self.threads is None:
+            changes["threads"] = os.cpu_count() or 1
+        return dataclasses.replace(self, **changes) if changes else self
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able dict of every field."""
+        out = dataclasses.asdict(self)
+        out["size"] = list(self.size)
+        return out
+
+    def content_hash(self) -> str:
+        """sha256 of the settings that decide the map's content (threads and chunking excluded)."""
+        data = self.to_dict()
+        for key in ("threads", "chunk_rays"):
+            data.pop(key, None)
+        blob = json.dumps(data, sort_keys=True, separators=(",", ":")).encode()
+        return hashlib.sha256(blob).hexdigest()
+
+
+def _bad(name: str, value: Any, allowed: str) -> ThickbakeError:
+    return ThickbakeError(f"setting {name} = {value!r} is not allowed", fix=f"use {allowed}")
+
+
+def _check_choice(obj, name: str, choices: tuple[str, ...]) -> None:
+    value = getattr(obj, name)
+    if value not in choices:
+        raise _bad(name, value, " or ".join(repr(c) for c in choices))
+
+
+def _check_int(obj, name: str, low: int, high: int) -> None:
+    value = getattr(obj, name)
+    if isinstance(value, bool) or not isinstance(value, int) or not (low <= value <= high):
+        raise _bad(name, value, f"a whole number from {low} to {high}")
+
+
+def _check_float(obj, name: str, low: float, high: float, inclusive_low: bool) -> None:
+    value = getattr(obj, name)
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value > high or value < low or (value == low and not inclusive_low):
+        raise _bad(name, value, f"a number from {low:g} to {high:g}")
+    object.__setattr__(obj, name, float(value))
+
+
+def _check_optional_positive(obj, name: str) -> None:
+    value = getattr(obj, name)
+    if value is None:
+        return
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+        raise _bad(name, value, "a positive number in scene units")
+    object.__setattr__(obj, name, float(value))
+
+
+__all__ = ["BakeSettings", "MEASURES", "LOBES", "SEQUENCES", "ORDERS", "default_pad", "parse_size", "estimate_bytes"]
