@@ -82,8 +82,8 @@ def base_points(count: int, seed: int) -> np.ndarray:
     return _sobol_cached(m, int(seed))[:count]
 
 
-def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequence: str) -> np.ndarray:
-    """(n, k, 2) float32 uniform variates for rays ``ray_start … ray_stop−1`` of each sample.
+def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequence: str):
+    """Uniform variates for rays ``ray_start … ray_stop−1`` of each sample.
 
     Parameters
     ----------
@@ -93,18 +93,42 @@ def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequenc
     ray_start, ray_stop : int
         Range of ray indices within each sample's sequence (k = stop − start).
     sequence : {"sobol", "random"}
+
+    Returns
+    -------
+    u1, u2 : (n, k) float32 each, in [0, 1)
+        Kept as two contiguous arrays (not one (n, k, 2) array) so later passes stream memory.
     """
     k = ray_stop - ray_start
     if sequence == "sobol":
         base = base_points(ray_stop, seed)[ray_start:ray_stop].astype(np.float32)
         offset = hash_uniform2(seed, keys).astype(np.float32)
-        u = base[None, :, :] + offset[:, None, :]
-        u -= (u >= 1.0)
-        return u
+        out = []
+        for d in range(2):
+            u = np.add(offset[:, d:d + 1], base[None, :, d])
+            u -= u >= 1.0
+            out.append(u)
+        return out[0], out[1]
     ray = np.arange(ray_start, ray_stop, dtype=np.uint64)
     with np.errstate(over="ignore"):
         ray_keys = splitmix64(keys[:, None] * np.uint64(0x100000001B3) + ray[None, :])
-    return hash_uniform2(seed ^ 0x5EED, ray_keys.reshape(-1)).reshape(len(keys), k, 2).astype(np.float32)
+    u = hash_uniform2(seed ^ 0x5EED, ray_keys.reshape(-1)).astype(np.float32)
+    return u[:, 0].reshape(len(keys), k).copy(), u[:, 1].reshape(len(keys), k).copy()
+
+
+def lobe_cos_sin(u1: np.ndarray, cone_deg: float, lobe: str):
+    """cosθ and sinθ (same shape and dtype as ``u1``) of the polar angle drawn from variate u1."""
+    alpha = math.radians(cone_deg)
+    dtype = u1.dtype.type
+    if lobe == "cosine":
+        sin2 = u1 * dtype(math.sin(alpha) ** 2)
+        cos_t = np.sqrt(np.maximum(1 - sin2, 0))
+    elif lobe == "uniform":
+        cos_t = 1 - u1 * dtype(1 - math.cos(alpha))
+        sin2 = np.maximum(1 - cos_t * cos_t, 0)
+    else:
+        raise ValueError(f"unknown lobe {lobe!r}")
+    return cos_t, np.sqrt(sin2)
 
 
 def sample_lobe(u: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
@@ -124,17 +148,7 @@ def sample_lobe(u: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
     >>> np.allclose(d, [[0, 0, 1]])
     True
     """
-    u1 = u[..., 0]
-    alpha = math.radians(cone_deg)
-    if lobe == "cosine":
-        sin2 = u1 * np.float32(math.sin(alpha) ** 2)
-        cos_t = np.sqrt(np.maximum(1 - sin2, 0))
-    elif lobe == "uniform":
-        cos_t = 1 - u1 * np.float32(1 - math.cos(alpha))
-        sin2 = np.maximum(1 - cos_t * cos_t, 0)
-    else:
-        raise ValueError(f"unknown lobe {lobe!r}")
-    sin_t = np.sqrt(sin2)
+    cos_t, sin_t = lobe_cos_sin(u[..., 0], cone_deg, lobe)
     phi = u[..., 1] * np.float32(2 * math.pi)
     out = np.empty(u.shape[:-1] + (3,), dtype=u.dtype)
     out[..., 0] = sin_t * np.cos(phi)
@@ -192,14 +206,42 @@ def orthonormal_frames(normals: np.ndarray):
     return tangent, bitangent
 
 
-def world_directions(local: np.ndarray, axis: np.ndarray) -> np.ndarray:
-    """Rotate (n, k, 3) local directions so local +z maps onto each sample's (n, 3) unit ``axis``.
+def ray_directions(u1: np.ndarray, u2: np.ndarray, axis: np.ndarray, cone_deg: float, lobe: str):
+    """World-space ray directions for n samples × k rays, built in place in float32.
 
-    Returns (n·k, 3) float32, C-contiguous, ready for the ray engine.
+    Equivalent to ``sample_lobe`` followed by a rotation of local +z onto each sample's ``axis``,
+    fused so that every pass streams contiguous (n, k) float32 arrays.
+
+    Parameters
+    ----------
+    u1, u2 : (n, k) float32
+        Variates from :func:`variates`.
+    axis : (n, 3) float32
+        Unit lobe axis of each sample (the inward normal).
+    cone_deg : float
+    lobe : {"cosine", "uniform"}
+
+    Returns
+    -------
+    directions : (n·k, 3) float32, C-contiguous
+        Unit vectors, sample-major (ray j of sample i is row i·k + j).
+    cos_theta : (n, k) float32
+        Cosine between each direction and its axis.
     """
-    axis = axis.astype(np.float32)
+    n, k = u1.shape
+    cos_t, sin_t = lobe_cos_sin(u1, cone_deg, lobe)
+    phi = u2 * np.float32(2 * math.pi)
+    cx = np.cos(phi)
+    cx *= sin_t
+    cy = np.sin(phi, out=phi)
+    cy *= sin_t
+    axis = axis.astype(np.float32, copy=False)
     tangent, bitangent = orthonormal_frames(axis)
-    out = (local[..., 0:1] * tangent[:, None, :]
-           + local[..., 1:2] * bitangent[:, None, :]
-           + local[..., 2:3] * axis[:, None, :])
-    return np.ascontiguousarray(out.reshape(-1, 3), dtype=np.float32)
+    out = np.empty((n, k, 3), np.float32)
+    tmp = np.empty((n, k), np.float32)
+    for j in range(3):  # three components, each a full-array pass
+        acc = np.multiply(cx, tangent[:, j:j + 1])
+        acc += np.multiply(cy, bitangent[:, j:j + 1], out=tmp)
+        acc += np.multiply(cos_t, axis[:, j:j + 1], out=tmp)
+        out[..., j] = acc
+    return out.reshape(-1, 3), cos_t

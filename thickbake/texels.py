@@ -211,7 +211,7 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
         ey = row[:, None] + 0.5
         e_centre = a[t] * ex + b[t] * ey + c[t]
         reach = 0.5 * (np.abs(a[t]) + np.abs(b[t]))
-        touches = (e_centre + reach >= 0).all(axis=1)
+        touches = (e_centre + reach > 0).all(axis=1)  # strict: sharing only a boundary line is not touching
         touched.append((row[touches] * width + col[touches], t[touches]))
         # centre claims at the sub-positions
         tt = t[touches]
