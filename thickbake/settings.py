@@ -163,7 +163,7 @@ class BakeSettings:
     bias: float | None = None
     sequence: str = "sobol"
     target_error: float | None = None
-    chunk_rays: int = 1 << 20
+    chunk_rays: int = 1 << 18
     order: str = "morton"
 
     def __post_init__(self):

@@ -1,0 +1,274 @@
+#!/usr/bin/env python3
+"""Benchmark thickbake against the ray engine and a plain-Python reference, side by side in one run.
+
+Prints, on one generated ~80k-face closed UV-mapped mesh:
+
+* A  raw embreex throughput on exactly the rays the bake traces (recorded from a bake, replayed with
+     the same chunking through a thread pool over one scene), rays/s;
+* B  ``thickbake.bake`` end to end (loaded mesh → encoded map), rays/s, all threads and one thread;
+* C  the first thing a Python user would write: the same rays through trimesh's public
+     ``mesh.ray.intersects_location``, chunked, one thread (on a prefix of the rays);
+* the ratios B/A, B/C and B(all)/B(1), and peak RSS;
+* noise: per-texel RMS error against the sphere's closed form 4R/3 (cosine lobe) with Sobol +
+  per-sample rotation vs independent random directions, both at 32 rays;
+* adaptive rays: p95 error against a 512-ray reference and the share of rays traced, fixed vs
+  ``--target-error``, on the shell-and-ball shape and on the bundled sample;
+* ray order (Z order vs rows) and work-item size (``chunk_rays``);
+* with ``--memory-size N``: peak RSS of an N² bake with 64 rays in a fresh process.
+
+Machines are shared and noisy: only ratios measured in the same run mean anything.
+
+    python scripts/bench.py                 # full run (~5 min on 2 cores)
+    python scripts/bench.py --quick         # tiny smoke run (seconds)
+    python scripts/bench.py --memory-size 4096
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import resource
+import subprocess
+import sys
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+import thickbake  # noqa: E402
+from thickbake.mesh import load_asset  # noqa: E402
+from thickbake.trace import EmbreeEngine  # noqa: E402
+
+
+def bumpy_torus(faces_target: int = 80_000):
+    """A closed torus with a bumpy tube, UV-mapped on its (θ, φ) grid with split seams.
+
+    Tube radius r(θ, φ) = 0.3·(1 + 0.25·sin 5θ · sin 3φ) around a ring of radius 1: thick and thin
+    parts, no closed form needed (the benchmark measures speed, not accuracy).
+    """
+    import trimesh
+    from trimesh.visual import TextureVisuals
+
+    n_phi = max(8, int(round(math.sqrt(faces_target / 8))))
+    n_theta = max(8, int(round(faces_target / (2 * n_phi))))
+    theta = np.linspace(0, 2 * np.pi, n_theta + 1)
+    phi = np.linspace(0, 2 * np.pi, n_phi + 1)
+    th, ph = np.meshgrid(theta, phi, indexing="ij")
+    r = 0.3 * (1 + 0.25 * np.sin(5 * th) * np.sin(3 * ph))
+    x = (1 + r * np.cos(ph)) * np.cos(th)
+    y = (1 + r * np.cos(ph)) * np.sin(th)
+    z = r * np.sin(ph)
+    vertices = np.stack([x, y, z], -1).reshape(-1, 3)
+    uv = np.stack([th / (2 * np.pi), ph / (2 * np.pi)], -1).reshape(-1, 2) * 0.98 + 0.01
+    i, j = np.meshgrid(np.arange(n_theta), np.arange(n_phi), indexing="ij")
+    a = (i * (n_phi + 1) + j).ravel()
+    b = a + (n_phi + 1)
+    faces = np.concatenate([np.stack([a, b, b + 1], 1), np.stack([a, b + 1, a + 1], 1)])
+    mesh = trimesh.Trimesh(vertices, faces, visual=TextureVisuals(uv=uv), process=False)
+    # outward orientation check: flip if the grid winding came out inward
+    if mesh.volume < 0:
+        mesh = trimesh.Trimesh(vertices, faces[:, ::-1], visual=TextureVisuals(uv=uv), process=False)
+    return mesh
+
+
+class RecordingEngine(EmbreeEngine):
+    """Embree engine that keeps a copy of every ray batch it is asked to trace."""
+
+    def __init__(self, vertices, faces):
+        super().__init__(vertices, faces)
+        self.batches = []
+
+    def first_hit(self, origins, directions, max_distance):
+        self.batches.append((origins.copy(), directions.copy(), max_distance))
+        return super().first_hit(origins, directions, max_distance)
+
+
+def peak_rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def rate(rays: int, seconds: float) -> float:
+    return rays / max(seconds, 1e-9)
+
+
+def bench_throughput(asset, size: int, rays: int, threads: int, c_rays: int) -> dict:
+    settings = dict(size=size, rays=rays, threads=threads)
+    # record exactly the rays of a bake (single-threaded so batches come in a fixed order)
+    recorder = RecordingEngine(asset.trace_vertices, asset.trace_faces)
+    thickbake.bake(asset, engine=recorder, **{**settings, "threads": 1})
+    batches = recorder.batches
+    total = sum(len(o) for o, _, _ in batches)
+
+    engine = EmbreeEngine(asset.trace_vertices, asset.trace_faces)
+    with ThreadPoolExecutor(threads) as pool:
+        t0 = time.perf_counter()
+        list(pool.map(lambda b: engine.first_hit(*b), batches))
+        a_seconds = time.perf_counter() - t0
+
+    def end_to_end(n_threads: int) -> tuple[float, int]:
+        t0 = time.perf_counter()
+        result = thickbake.bake(asset, **{**settings, "threads": n_threads})
+        result.codes()
+        return time.perf_counter() - t0, result.info["rays_traced"]
+
+    b_seconds, b_rays = end_to_end(threads)
+    b1_seconds, b1_rays = end_to_end(1)
+    assert b_rays == total == b1_rays
+
+    # C: trimesh's public API, chunked, one thread, on a prefix of the same rays
+    mesh = asset_trimesh(asset)
+    origins = np.concatenate([o for o, _, _ in batches])[:c_rays].astype(np.float64)
+    dirs = np.concatenate([d for _, d, _ in batches])[:c_rays].astype(np.float64)
+    t0 = time.perf_counter()
+    for lo in range(0, len(origins), 10_000):
+        mesh.ray.intersects_location(origins[lo:lo + 10_000], dirs[lo:lo + 10_000], multiple_hits=False)
+    c_seconds = time.perf_counter() - t0
+    del batches, recorder
+    a, b, b1, c = rate(total, a_seconds), rate(b_rays, b_seconds), rate(b1_rays, b1_seconds), rate(len(origins), c_seconds)
+    return {"rays": total, "A_embree_rays_per_s": a, "B_bake_rays_per_s": b, "B1_bake_1thread_rays_per_s": b1,
+            "C_trimesh_rays_per_s": c, "C_rays_measured": len(origins),
+            "B_over_A": b / a, "B_over_C": b / c, "thread_scaling": b / b1}
+
+
+def asset_trimesh(asset):
+    import trimesh
+
+    return trimesh.Trimesh(asset.trace_vertices, asset.trace_faces, process=False)
+
+
+def bench_noise(size: int, rays: int) -> dict:
+    from thickbake import shapes
+
+    sphere = shapes.sphere(radius=1.0)
+    out = {}
+    for sequence in ("sobol", "random"):
+        result = thickbake.bake(sphere.mesh, size=size, rays=rays, sequence=sequence)
+        err = result.values[result.covered] - 4.0 / 3.0   # closed form 4R/3 (cosine lobe, REFERENCES.md)
+        out[f"rms_{sequence}"] = float(np.sqrt(np.mean(err ** 2)))
+    out["ratio_sobol_over_random"] = out["rms_sobol"] / out["rms_random"]
+    return out
+
+
+def bench_adaptive(mesh, size: int, cap: int, target: float, reference_rays: int = 512) -> dict:
+    ref = thickbake.bake(mesh, size=size, rays=reference_rays, seed=12345)
+    fixed = thickbake.bake(mesh, size=size, rays=cap)
+    adaptive = thickbake.bake(mesh, size=size, rays=cap, target_error=target)
+    cov = ref.covered
+
+    def p95(result):
+        return float(np.percentile(np.abs(result.values[cov] - ref.values[cov]), 95))
+
+    return {"cap": cap, "target_error": target, "p95_fixed": p95(fixed), "p95_adaptive": p95(adaptive),
+            "rays_fixed": fixed.info["rays_traced"], "rays_adaptive": adaptive.info["rays_traced"],
+            "ray_share": adaptive.info["rays_traced"] / fixed.info["rays_traced"]}
+
+
+def bench_order_chunks(asset, size: int, rays: int, threads: int) -> dict:
+    out = {}
+    for label, options in (("morton, chunk 2^20", dict(order="morton")),
+                           ("rows, chunk 2^20", dict(order="rows")),
+                           ("morton, chunk 2^18", dict(chunk_rays=1 << 18)),
+                           ("morton, chunk 2^22", dict(chunk_rays=1 << 22))):
+        t0 = time.perf_counter()
+        result = thickbake.bake(asset, size=size, rays=rays, threads=threads, **options)
+        out[label] = rate(result.info["rays_traced"], time.perf_counter() - t0)
+    return out
+
+
+def bench_memory(size: int, rays: int, faces: int) -> dict:
+    code = (
+        "import sys, resource, time; sys.path.insert(0, %r)\n"
+        "sys.argv = ['bench']\n"
+        "import bench, thickbake\n"
+        "from thickbake.mesh import load_asset\n"
+        "asset = load_asset(bench.bumpy_torus(%d))\n"
+        "t = time.perf_counter(); r = thickbake.bake(asset, size=%d, rays=%d); r.codes()\n"
+        "print(r.info['rays_traced'], time.perf_counter() - t)\n"
+    ) % (str(Path(__file__).parent), faces, size, rays)
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    rays_traced, seconds = proc.stdout.split()
+    return {"size": size, "rays": rays, "peak_rss_mb": max(peak, before) / 1024,
+            "rays_traced": int(rays_traced), "seconds": float(seconds)}
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--size", type=int, default=512, help="map size for the throughput runs (default 512)")
+    parser.add_argument("--rays", type=int, default=64)
+    parser.add_argument("--faces", type=int, default=80_000)
+    parser.add_argument("--threads", type=int, default=os.cpu_count() or 1)
+    parser.add_argument("--c-rays", type=int, default=200_000, help="rays traced through trimesh for C")
+    parser.add_argument("--memory-size", type=int, default=0, help="also measure peak RSS of an N² bake (e.g. 4096)")
+    parser.add_argument("--quick", action="store_true", help="tiny sizes: checks the script runs")
+    parser.add_argument("--json", metavar="FILE", help="write all figures as JSON")
+    args = parser.parse_args(argv)
+    if args.quick:
+        args.size, args.rays, args.faces, args.c_rays = 64, 16, 2000, 2000
+
+    figures: dict = {"machine": {"cores": os.cpu_count(), "python": sys.version.split()[0]}}
+    asset = load_asset(bumpy_torus(args.faces))
+    print(f"mesh: bumpy torus, {asset.report.faces:,} faces, watertight={asset.report.watertight}")
+
+    t = bench_throughput(asset, args.size, args.rays, args.threads, args.c_rays)
+    figures["throughput"] = t
+    print(f"\n== throughput: {args.size}² map, {args.rays} rays/texel, {t['rays']:,} rays, {args.threads} threads")
+    print(f"A  embree on the bake's rays      {t['A_embree_rays_per_s'] / 1e6:8.2f} M rays/s")
+    print(f"B  thickbake.bake end to end      {t['B_bake_rays_per_s'] / 1e6:8.2f} M rays/s")
+    print(f"B1 thickbake.bake, 1 thread       {t['B1_bake_1thread_rays_per_s'] / 1e6:8.2f} M rays/s")
+    print(f"C  trimesh intersects_location    {t['C_trimesh_rays_per_s'] / 1e6:8.4f} M rays/s  ({t['C_rays_measured']:,} rays)")
+    print(f"B/A = {t['B_over_A']:.3f}  (target >= 0.8)")
+    print(f"B/C = {t['B_over_C']:.1f}  (target >= 4)")
+    print(f"B(all)/B(1) = {t['thread_scaling']:.2f}  (target >= 1.8 on 2 cores)")
+
+    n = bench_noise(32 if args.quick else 128, 32)
+    figures["noise"] = n
+    print("\n== noise: sphere R = 1, cosine lobe, 32 rays, per-texel RMS error vs 4R/3")
+    print(f"Sobol + per-sample rotation  {n['rms_sobol']:.5f}")
+    print(f"independent random           {n['rms_random']:.5f}")
+    print(f"ratio = {n['ratio_sobol_over_random']:.3f}  (target <= 0.5)")
+
+    from thickbake import shapes
+
+    adaptive_size = 32 if args.quick else 256
+    cases = [("shell + ball", shapes.shell_and_ball().mesh)]
+    sample = ROOT / "samples" / "candle.glb"
+    if sample.exists():
+        cases.append(("samples/candle.glb", str(sample)))
+    figures["adaptive"] = {}
+    print(f"\n== adaptive rays: {adaptive_size}² map, cap 64 rays, p95 |error| vs a 512-ray reference")
+    for label, mesh in cases:
+        diag = load_asset(mesh).diagonal
+        target = 0.004 * diag   # absolute standard-error target, 0.4% of the bounding-box diagonal
+        a = bench_adaptive(mesh, adaptive_size, 64, target)
+        figures["adaptive"][label] = a
+        print(f"{label:22s} fixed p95 {a['p95_fixed']:.5f}  adaptive p95 {a['p95_adaptive']:.5f}  "
+              f"rays {a['ray_share']:.1%} of fixed (target: p95 no worse, <= 40% rays)")
+
+    o = bench_order_chunks(asset, args.size, args.rays, args.threads)
+    figures["order_chunks"] = o
+    print("\n== ray order and work-item size (end-to-end rays/s, same run)")
+    for label, value in o.items():
+        print(f"{label:20s} {value / 1e6:8.2f} M rays/s")
+
+    figures["peak_rss_mb"] = peak_rss_mb()
+    print(f"\npeak RSS of this process: {figures['peak_rss_mb']:.0f} MB (holds the recorded rays for A)")
+    if args.memory_size:
+        m = bench_memory(args.memory_size, 64, args.faces)
+        figures["memory"] = m
+        print(f"{m['size']}² bake, 64 rays, {m['rays_traced']:,} rays in {m['seconds']:.0f} s: "
+              f"peak RSS {m['peak_rss_mb']:.0f} MB (target < 1536 MB)")
+    if args.json:
+        Path(args.json).write_text(json.dumps(figures, indent=2) + "\n")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

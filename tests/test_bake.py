@@ -1,0 +1,298 @@
+"""End-to-end bakes of analytic shapes, checked against closed forms named beside each check.
+
+Tolerance recipe (stated once, used throughout):
+
+* Monte-Carlo: a texel's mean of n rays has standard error σ/√n, σ² the per-ray variance from the
+  closed-form moments.  Over m texels we allow z·σ/√n with z = Φ⁻¹(1 − 10⁻³/(2m)) (Bonferroni: the
+  chance that any texel of independent rays exceeds it is below 10⁻³).  Sobol directions with a
+  per-sample rotation are more accurate than independent rays, so this bound is conservative.
+* Facet: texel points lie on flat facets up to ``shape.facet_error`` (δ) inside the ideal surface, and
+  the exit point too, so a chord can be short by up to 2δ.
+* Quantisation: a 16-bit code holds reach/65535 per step; rounding costs at most half a step.
+* Bias: origins start ``bias`` inside; the chord is corrected to first order (t + bias·cosθ), and the
+  second-order remainder is below bias·(1 − cosθ) ≤ bias.
+"""
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy import integrate
+from scipy.stats import norm
+
+import thickbake
+from thickbake import shapes
+from thickbake.encode import decode
+from thickbake.output import read_image
+
+
+def z_bonferroni(m: int, alpha: float = 1e-3) -> float:
+    return float(norm.isf(alpha / (2 * max(m, 1))))
+
+
+@pytest.fixture(scope="module")
+def sphere():
+    return shapes.sphere(radius=1.0)
+
+
+def decoded_png(path):
+    side = json.loads(path.with_suffix(".json").read_text())
+    enc = side["encoding"]
+    bits = 16 if enc["code_max"] == 65535 else 8
+    return decode(read_image(path), enc["offset"], enc["scale"], bits), side
+
+
+def test_sphere_along_normal_is_diameter(sphere, tmp_path):
+    # sphere chord along the inward normal = 2R (elementary geometry; REFERENCES.md "Chord geometry")
+    result = thickbake.bake(sphere.mesh, size=128, cone=0)
+    out = tmp_path / "s.png"
+    result.write(out)
+    values, side = decoded_png(out)
+    covered = result.covered
+    tol = 2 * sphere.facet_error + result.settings.bias + 0.5 * side["reach"] / 65535 + 1e-5
+    assert np.abs(values[covered] - 2.0).max() <= tol
+    assert side["rays_per_sample"] == 1 and side["miss_fraction"] == 0
+
+
+@pytest.mark.parametrize("lobe, expected, second_moment", [
+    # chord ℓ = 2R cosθ.  cosine lobe (pdf cosθ/π): E[ℓ] = 2R·∫cos²θ sinθ dθ·2 = 4R/3, E[ℓ²] = 2R²;
+    # uniform over the hemisphere (pdf 1/2π): E[ℓ] = 2R·∫cosθ sinθ dθ = R, E[ℓ²] = 4R²/3.
+    ("cosine", 4 / 3, 2.0),
+    ("uniform", 1.0, 4 / 3),
+])
+def test_sphere_hemisphere_means(sphere, lobe, expected, second_moment):
+    rays = 64
+    result = thickbake.bake(sphere.mesh, size=96, rays=rays, lobe=lobe)
+    values = result.values[result.covered]
+    sigma = math.sqrt(second_moment - expected ** 2)
+    tol = z_bonferroni(values.size) * sigma / math.sqrt(rays) + 2 * sphere.facet_error + result.settings.bias
+    assert np.abs(values - expected).max() <= tol
+    # the average over texels has a far smaller error; independent rays would give σ/√(n·m)
+    assert abs(values.mean() - expected) <= 4 * sigma / math.sqrt(rays * values.size) + 2 * sphere.facet_error
+
+
+def test_torus_along_normal():
+    # torus: the normal lies in the meridian plane through the tube centre, chord = 2r everywhere
+    torus = shapes.torus(major_radius=1.0, minor_radius=0.3)
+    result = thickbake.bake(torus.mesh, size=128, cone=0)
+    tol = 2 * torus.facet_error + result.settings.bias + 1e-5
+    assert np.abs(result.values[result.covered] - 0.6).max() <= tol
+
+
+def test_hollow_shell_along_normal_both_surfaces():
+    # hollow sphere r_out/r_in: along the normal the chord is r_out − r_in from either surface
+    shell = shapes.hollow_shell(outer_radius=1.0, inner_radius=0.8)
+    result = thickbake.bake(shell.mesh, size=128, cone=0)
+    tol = 2 * shell.facet_error + result.settings.bias + 1e-5
+    values = result.values[result.covered]
+    assert np.abs(values - 0.2).max() <= tol
+    # both surfaces are present in the map (the inner one is about 64% of the outer's area)
+    assert result.info["mesh"]["watertight"]
+
+
+@pytest.mark.parametrize("name", ["box", "sphere", "l_block", "capped_cylinder"])
+def test_cauchy_mean_chord(name):
+    # Cauchy's mean chord theorem: area-weighted mean of the cosine-hemisphere mean chord = 4V/S
+    # (A. Cauchy 1832; L. A. Santaló 1976); for the non-convex L block each chord segment counts
+    # (Mazzolo, Roesslinger & Gille, J. Math. Phys. 44:6195, 2003 — from memory).  V and S are the
+    # traced polyhedron's, so the facet error cancels; the 1% budget covers the midpoint-rule
+    # quadrature of the texel grid and the Monte-Carlo error of the mean.
+    shape = {"box": shapes.box, "sphere": shapes.sphere, "l_block": shapes.l_block,
+             "capped_cylinder": shapes.capped_cylinder}[name]()
+    result = thickbake.bake(shape.mesh, size=256, rays=32)
+    weight = result.area[result.covered].astype(np.float64)
+    measured = float((weight * result.values[result.covered]).sum() / weight.sum())
+    assert measured == pytest.approx(shape.cauchy_mean_chord, rel=0.01)
+    # the texel quadrature covers the surface: its area sums to the mesh's area within 1%
+    assert weight.sum() == pytest.approx(shape.area_mesh, rel=0.01)
+
+
+def test_cauchy_fails_under_uniform_lobe():
+    # the theorem needs cosine weighting: under the uniform lobe a unit cube's surface-averaged mean
+    # chord is 0.59776 (OEIS A348682; R. Coleman, J. Appl. Prob. 6:430, 1969), not 2/3
+    cube = shapes.box(size=(1.0, 1.0, 1.0))
+    result = thickbake.bake(cube.mesh, size=192, rays=64, lobe="uniform")
+    weight = result.area[result.covered].astype(np.float64)
+    measured = float((weight * result.values[result.covered]).sum() / weight.sum())
+    assert measured == pytest.approx(0.5977557435927337, rel=0.01)
+    assert abs(measured - 2 / 3) > 0.05
+
+
+def sphere_mean_transmittance(tau: float) -> float:
+    """Cosine-weighted hemisphere mean of exp(−τ cosθ) (REFERENCES.md): 2[1 − (1+τ)e^(−τ)]/τ²."""
+    return 2 * (1 - (1 + tau) * math.exp(-tau)) / tau ** 2
+
+
+def test_transmittance_closed_form_matches_integration():
+    # independent numerical integration of ∫ exp(−τμ)·2μ dμ over μ ∈ [0, 1] (cosine lobe, μ = cosθ)
+    for tau in (0.5, 3.4, 7.0):
+        numeric, _ = integrate.quad(lambda mu: math.exp(-tau * mu) * 2 * mu, 0, 1)
+        assert sphere_mean_transmittance(tau) == pytest.approx(numeric, rel=1e-10)
+    # REFERENCES.md computed check value, R = 1.7, σ = 1 (τ = 3.4): 0.147605123214
+    assert sphere_mean_transmittance(3.4) == pytest.approx(0.147605123214, abs=1e-11)
+
+
+def test_sphere_transmittance(sphere):
+    # Beer–Lambert: T = exp(−d/L) with L the glTF attenuationDistance (KHR_materials_volume);
+    # σ = 1/L, τ = 2R/L.  Per-ray second moment: same closed form at 2τ.
+    length, rays = 0.5, 64
+    tau = 2.0 / length
+    expected = sphere_mean_transmittance(tau)
+    sigma = math.sqrt(sphere_mean_transmittance(2 * tau) - expected ** 2)
+    result = thickbake.bake(sphere.mesh, size=96, rays=rays, measure="transmittance", attenuation_distance=length)
+    values = result.values[result.covered]
+    # facet: a chord short by 2δ raises T by at most 2δ/L (|dT/dd| ≤ 1/L)
+    tol = z_bonferroni(values.size) * sigma / math.sqrt(rays) + (2 * sphere.facet_error + result.settings.bias) / length
+    assert np.abs(values - expected).max() <= tol
+    assert result.info["units"] == "unitless"
+
+
+def test_occlusion_default_reach_is_quarter_diagonal(sphere):
+    # a sphere R = 1: diagonal 2√3, reach = √3/2 ≈ 0.866 < 2R, so hits within reach are the
+    # directions with 2R cosθ ≤ reach: P = P(cos²θ ≤ (reach/2R)²) = (reach/2R)² under the cosine lobe
+    result = thickbake.bake(sphere.mesh, size=64, rays=64, measure="occlusion")
+    reach = result.settings.reach
+    assert reach == pytest.approx(0.25 * math.sqrt(3) * 2, rel=0.01)
+    expected = (reach / 2) ** 2
+    values = result.values[result.covered]
+    sigma = math.sqrt(expected * (1 - expected))
+    assert abs(values.mean() - expected) < 4 * sigma / math.sqrt(64 * values.size) + 0.01
+
+
+def test_png_round_trip_and_padding(sphere, tmp_path):
+    result = thickbake.bake(sphere.mesh, size=128, rays=16, pad=3)
+    out = tmp_path / "m.png"
+    result.write(out)
+    values, side = decoded_png(out)
+    step = side["reach"] / 65535
+    covered = result.covered
+    # 16-bit round trip: within half a code value, i.e. within one code value
+    assert np.abs(values[covered] - result.values[covered]).max() <= 0.5 * step * (1 + 1e-6)
+    # padding filled the 3-texel band and nothing else
+    from scipy import ndimage
+    dist = ndimage.distance_transform_edt(~covered)
+    band = (~covered) & (dist <= 3)
+    codes = read_image(out)
+    assert (codes[band] > 0).all()
+    assert (codes[(~covered) & (dist > 3)] == 0).all()
+    assert side["stats"]["min"] <= side["stats"]["mean"] <= side["stats"]["max"]
+    for key in ("measure", "reach", "inverted", "size", "rays", "coverage", "stats", "miss_fraction",
+                "rays_traced", "seconds", "input", "settings", "thickbake_version", "stderr_p95"):
+        assert key in side
+
+
+def test_invert_and_8_bit(sphere, tmp_path):
+    result = thickbake.bake(sphere.mesh, size=64, cone=0, invert=True, bits=8)
+    out = tmp_path / "inv.png"
+    result.write(out)
+    values, side = decoded_png(out)
+    assert read_image(out).dtype == np.uint8 and side["inverted"]
+    assert np.abs(values[result.covered] - 2.0).max() <= 0.5 * side["reach"] / 255 + 2 * sphere.facet_error + 1e-3
+
+
+def test_float_tiff_holds_raw_measure(sphere, tmp_path):
+    result = thickbake.bake(sphere.mesh, size=64, cone=0)
+    out = tmp_path / "raw.tif"
+    result.write(out, error_out=tmp_path / "err.tif")
+    image = read_image(out)
+    assert image.dtype == np.float32
+    assert np.array_equal(image[result.covered], result.values[result.covered])
+    assert (tmp_path / "err.tif").exists()
+
+
+def test_same_seed_bit_identical_independent_of_threads_and_chunks(sphere, tmp_path):
+    a = thickbake.bake(sphere.mesh, size=96, rays=32, seed=7, threads=1)
+    b = thickbake.bake(sphere.mesh, size=96, rays=32, seed=7, threads=2, chunk_rays=1 << 12, order="rows")
+    c = thickbake.bake(sphere.mesh, size=96, rays=32, seed=8)
+    a.write(tmp_path / "a.png")
+    b.write(tmp_path / "b.png")
+    assert (tmp_path / "a.png").read_bytes() == (tmp_path / "b.png").read_bytes()
+    assert np.array_equal(a.values, b.values)
+    assert not np.array_equal(a.values, c.values)
+
+
+def test_obj_and_glb_give_the_same_image(tmp_path):
+    # glTF puts UV (0,0) top-left and trimesh flips V on load; OBJ is v-up: both must bake alike
+    box = shapes.box()
+    paths = shapes.write_shape_set(tmp_path, [box])
+    obj = next(p for p in paths if p.suffix == ".obj")
+    glb = next(p for p in paths if p.suffix == ".glb")
+    a = thickbake.bake(str(obj), size=64, rays=16)
+    b = thickbake.bake(str(glb), size=64, rays=16)
+    assert np.array_equal(a.covered, b.covered)
+    assert np.abs(a.values - b.values).max() < 1e-5  # float32 positions vs float64 text
+    # and the layout is not symmetric under a V flip, so the check has teeth
+    assert not np.array_equal(a.covered, a.covered[::-1])
+
+
+def test_supersampling_covers_same_texels(sphere):
+    a = thickbake.bake(sphere.mesh, size=64, cone=0)
+    b = thickbake.bake(sphere.mesh, size=64, cone=0, supersample=2)
+    assert np.array_equal(a.covered, b.covered)
+    assert b.info["surface_samples"] > 3 * a.info["surface_samples"]
+    assert np.abs(b.values[b.covered] - 2).max() < 2 * sphere.facet_error + 1e-3
+
+
+def test_stacked_uv_islands_reported_as_overlap():
+    import trimesh
+
+    box = shapes.box(size=(1.0, 1.0, 1.0))
+    mesh = box.mesh.copy()
+    uv = mesh.visual.uv.copy()
+    # stack the six square face islands onto one square, as a game asset reusing texture space would
+    island = shapes.uv_islands(mesh)
+    vertex_island = np.zeros(len(uv), np.int64)
+    vertex_island[mesh.faces.ravel()] = np.repeat(island, 3)
+    for k in range(island.max() + 1):  # six islands, not a per-texel loop
+        sel = vertex_island == k
+        lo, hi = uv[sel].min(axis=0), uv[sel].max(axis=0)
+        uv[sel] = 0.2 + 0.6 * (uv[sel] - lo) / (hi - lo)
+    mesh.visual = trimesh.visual.TextureVisuals(uv=uv)
+    result = thickbake.bake(mesh, size=64, cone=0)
+    # border texels get one clamped sample, not a claim per island, so they are not counted
+    assert result.info["overlap"] > 0.85
+    # every texel averages six faces whose chord along the normal is 1 (unit cube extent)
+    assert np.abs(result.values[result.covered] - 1.0).max() < 1e-3
+
+
+def test_inside_out_mesh_is_fixed_and_reported(sphere):
+    import trimesh
+
+    m = sphere.mesh
+    flipped = trimesh.Trimesh(m.vertices, m.faces[:, ::-1], vertex_normals=-m.vertex_normals,
+                              visual=trimesh.visual.TextureVisuals(uv=m.visual.uv), process=False)
+    result = thickbake.bake(flipped, size=64, cone=0)
+    assert result.info["mesh"]["orientation_flipped"]
+    assert any("inside-out" in w for w in result.info["mesh"]["warnings"])
+    assert np.abs(result.values[result.covered] - 2.0).max() < 2 * sphere.facet_error + 1e-3
+
+
+def test_scene_node_transforms_apply(tmp_path):
+    # a glTF node scale of 2 doubles every chord; a mirroring node keeps the solid outward-facing
+    import trimesh
+
+    sphere = shapes.sphere(radius=1.0)
+    for matrix in (np.diag([2.0, 2.0, 2.0, 1.0]), np.diag([-2.0, 2.0, 2.0, 1.0])):
+        scene = trimesh.Scene()
+        scene.add_geometry(sphere.mesh, transform=matrix)
+        path = tmp_path / "scaled.glb"
+        scene.export(path)
+        result = thickbake.bake(str(path), size=64, cone=0)
+        assert not result.info["mesh"]["orientation_flipped"]
+        assert np.abs(result.values[result.covered] - 4.0).max() < 4 * sphere.facet_error + 1e-3
+
+
+def test_open_mesh_misses_count_as_reach(sphere):
+    import trimesh
+
+    m = sphere.mesh
+    keep = m.triangles_center[:, 2] < 0.8  # cut a cap off: rays through the hole escape
+    opened = trimesh.Trimesh(m.vertices, m.faces[keep], vertex_normals=m.vertex_normals,
+                             visual=trimesh.visual.TextureVisuals(uv=m.visual.uv), process=False)
+    result = thickbake.bake(opened, size=64, rays=16)
+    assert not result.info["mesh"]["watertight"]
+    assert result.info["miss_fraction"] > 0
+    # escaping rays count as the full reach (here 3.35 > any chord of the sphere, 2R = 2), so texels
+    # that see the hole average well above the closed sphere's 4R/3
+    assert result.info["stats"]["max"] > 1.6
