@@ -161,3 +161,15 @@ def test_engines_agree():
     # float32 embree vs float64 trimesh: agree to float32 rounding of unit-scale coordinates
     assert np.abs(a_dist - b_dist).max() < 1e-5
     assert (a_face[a_hit] == b_face[b_hit]).mean() > 0.99
+
+
+def test_keep_off_edges_moves_only_edge_samples():
+    tri = np.array([[[0.0, 0, 0], [1.0, 0, 0], [0.0, 1.0, 0]]])
+    bary = np.array([[0.5, 0.5, 0.0], [0.2, 0.3, 0.5], [1.0, 0.0, 0.0]])
+    out = texels.keep_off_edges(tri, np.zeros(3, np.int64), bary, 0.01)
+    heights = np.array([1 / np.sqrt(2), 1.0, 1.0])  # distance from each corner to its opposite edge
+    assert (out * heights >= 0.01 - 1e-12).all()
+    assert np.array_equal(out[1], bary[1])                  # already far from every edge
+    assert np.allclose(out.sum(axis=1), 1)
+    tiny = texels.keep_off_edges(tri * 1e-4, np.zeros(1, np.int64), bary[:1], 0.01)
+    assert np.allclose(tiny, 1 / 3)                          # too small a triangle: its centroid

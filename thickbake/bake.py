@@ -29,7 +29,7 @@ from .mesh import Asset, load_asset
 from .output import check_output_path, write_map
 from .padding import pad_map
 from .settings import BakeSettings
-from .texels import morton_order, rasterise_tile, surface_points, tile_buckets, uv_to_pixels
+from .texels import keep_off_edges, morton_order, rasterise_tile, surface_points, tile_buckets, uv_to_pixels
 
 #: First batch of rays per sample in adaptive mode; later batches double the count, so every sample
 #: ends on a power-of-two prefix of its low-discrepancy sequence.  16 rays give a usable variance
@@ -39,6 +39,8 @@ ADAPTIVE_FIRST_BATCH = 16
 #: (~12 bytes a ray each) stay in the core's L2 cache while numpy builds them, large enough that the
 #: per-call overhead is negligible.
 RAYS_PER_CALL = 1 << 16
+#: Samples are kept this many biases away from the edges of their triangle (see keep_off_edges).
+EDGE_MARGIN_BIASES = 4.0
 
 
 @dataclass
@@ -307,8 +309,11 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray,
         return {"rays": 0, "misses": 0, "overlapped": 0, "samples": 0, "rays_cap": 0}
     if s.order == "morton":
         samples = samples.take(morton_order(samples.texel, width))
+    # origins step `bias` inward; keep samples 4·bias from triangle edges so that step cannot cross
+    # the neighbouring face at a sharp edge (safe for wedges down to atan(1/4) ≈ 14°)
+    bary = keep_off_edges(asset.triangles, samples.face, samples.bary, EDGE_MARGIN_BIASES * s.bias)
     positions, normals = surface_points(asset.triangles, asset.triangle_normals, asset.face_normals,
-                                        samples.face, samples.bary)
+                                        samples.face, bary)
     keys = sample_keys(samples.texel, samples.sub, samples.face)
     origins = (positions - s.bias * normals).astype(np.float32)
     axis = (-normals).astype(np.float32)

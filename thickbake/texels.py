@@ -330,6 +330,47 @@ def closest_point_on_triangle_2d(tri: np.ndarray, q: np.ndarray):
     return best, best_d2
 
 
+def keep_off_edges(triangles: np.ndarray, face: np.ndarray, bary: np.ndarray, margin: float) -> np.ndarray:
+    """Move samples that lie within ``margin`` of an edge of their triangle towards its centroid.
+
+    A sample exactly on a mesh edge (island borders clamp texels onto edges) is a bad ray origin: at a
+    sharp edge, stepping ``bias`` along one face's inward normal lands on or beyond the other face, and
+    rays then start outside the solid.  Keeping every sample at least ``margin`` from its triangle's
+    edges (or at the centroid of a triangle too small for that) prevents it.
+
+    Parameters
+    ----------
+    triangles : (f, 3, 3) float64
+        Corner positions, scene units.
+    face : (n,) int64
+    bary : (n, 3) float64
+        Barycentric coordinates, inside or on the triangle.
+    margin : float
+        Scene units.
+
+    Returns
+    -------
+    (n, 3) float64
+        Barycentric coordinates with ``bary_i · height_i ≥ margin`` for every edge i (the distance to
+        the edge opposite corner i), moved along the line to the centroid.
+    """
+    if margin <= 0 or len(face) == 0:
+        return bary
+    tri = triangles[face]
+    opposite = tri[:, [2, 0, 1]] - tri[:, [1, 2, 0]]                       # edge opposite corner i
+    double_area = np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
+    length = np.linalg.norm(opposite, axis=2)
+    height = double_area[:, None] / np.where(length > 0, length, np.inf)
+    need = np.minimum(margin / np.where(height > 0, height, 1e-300), 1.0 / 3.0)  # bary required per edge
+    short = bary < need
+    if not short.any():
+        return bary
+    with np.errstate(divide="ignore", invalid="ignore"):
+        step = np.where(short, (need - bary) / np.maximum(1.0 / 3.0 - bary, 1e-300), 0.0)
+    lam = np.clip(step.max(axis=1), 0.0, 1.0)[:, None]
+    return (1 - lam) * bary + lam / 3.0
+
+
 def surface_points(triangles: np.ndarray, triangle_normals: np.ndarray, face_normals: np.ndarray,
                    face: np.ndarray, bary: np.ndarray):
     """World positions and outward unit shading normals of surface samples.
