@@ -222,6 +222,10 @@ def test_obj_and_glb_give_the_same_image(tmp_path):
     b = thickbake.bake(str(glb), size=64, rays=16)
     assert np.array_equal(a.covered, b.covered)
     assert np.abs(a.values - b.values).max() < 1e-5  # float32 positions vs float64 text
+    ply = tmp_path / "box.ply"  # PLY carries UVs as per-vertex s, t
+    box.mesh.export(ply)
+    c = thickbake.bake(str(ply), size=64, rays=16)
+    assert np.array_equal(a.covered, c.covered) and np.abs(a.values - c.values).max() < 1e-5
     # and the layout is not symmetric under a V flip, so the check has teeth
     assert not np.array_equal(a.covered, a.covered[::-1])
 

@@ -145,7 +145,12 @@ def summary_line(result, source: str, out: str) -> str:
     w, h = info["size"]
     units = " scene units" if info["measure"] == "thickness" else ""
     st = info["stats"]
-    return (f"{source} -> {out}: {w}x{h}, {int(result.covered.sum()):,} texels ({info['coverage']:.1%} covered), "
+    extra = ""
+    if info["overlap"] > 0:
+        extra += f", {info['overlap']:.1%} of texels on overlapping UVs"
+    if info["miss_fraction"] > 0:
+        extra += f", {info['miss_fraction']:.2%} of rays escaped"
+    return (f"{source} -> {out}: {w}x{h}, {int(result.covered.sum()):,} texels ({info['coverage']:.1%} covered{extra}), "
             f"{info['rays_traced']:,} rays at {info['rays_per_second'] / 1e6:.2f}M rays/s in {info['seconds']:.1f} s; "
             f"{info['measure']} min {st['min']:.4g} mean {st['mean']:.4g} max {st['max']:.4g}{units}")
 
