@@ -173,3 +173,20 @@ def test_keep_off_edges_moves_only_edge_samples():
     assert np.allclose(out.sum(axis=1), 1)
     tiny = texels.keep_off_edges(tri * 1e-4, np.zeros(1, np.int64), bary[:1], 0.01)
     assert np.allclose(tiny, 1 / 3)                          # too small a triangle: its centroid
+
+
+
+def test_islands_without_overlap_report_none():
+    # the sphere's UV layout has no overlapping islands (tests/test_shapes.py checks that), and its
+    # 45° diagonals pass through texel centres at 256²: the top-left rule must give each centre to
+    # exactly one triangle, which needs exactly opposite edge functions on shared edges
+    from thickbake import shapes
+    from thickbake.mesh import load_asset
+
+    asset = load_asset(shapes.sphere().mesh)
+    for size in (192, 256):
+        px = texels.uv_to_pixels(asset.triangle_uv, size, size)
+        idx = np.arange(len(px))
+        samples, overlapped = texels.rasterise_tile(px, idx, np.ones(len(px)), 0, 0, size, size, size, 1)
+        assert overlapped == 0, size
+        assert len(np.unique(samples.texel)) == len(samples)

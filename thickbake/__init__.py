@@ -3,12 +3,24 @@
 >>> import thickbake
 >>> result = thickbake.bake("samples/candle.glb", size=256, rays=32)   # doctest: +SKIP
 >>> result.write("candle_thickness.png")                               # doctest: +SKIP
+
+The heavy modules load on first use, so ``thickbake --help`` answers at once.
 """
 
 __version__ = "0.1.0"
 
 from .errors import ThickbakeError  # noqa: E402
-from .settings import BakeSettings  # noqa: E402
-from .bake import BakeResult, bake  # noqa: E402
 
 __all__ = ["__version__", "bake", "BakeResult", "BakeSettings", "ThickbakeError"]
+
+
+def __getattr__(name):
+    if name == "BakeSettings":
+        from .settings import BakeSettings
+
+        return BakeSettings
+    if name in ("bake", "BakeResult"):
+        from . import baker
+
+        return getattr(baker, name)
+    raise AttributeError(f"module 'thickbake' has no attribute {name!r}")

@@ -157,7 +157,7 @@ def summary_line(result, source: str, out: str) -> str:
 
 # ---------------------------------------------------------------------------- commands
 def cmd_bake(args) -> int:
-    from .bake import bake
+    from .baker import bake
     from .mesh import load_asset
     from .output import check_output_path
 

@@ -151,7 +151,9 @@ def load_asset(source, name: str | None = None) -> Asset:
             )
         digest = file_sha256(path)
         try:
-            loaded = trimesh.load(path, process=False, maintain_order=True)
+            # (maintain_order=True would keep vertex order but drops an OBJ's UVs when the file
+            # has an unused vertex, with trimesh 5.2; the bake does not need the file's order)
+            loaded = trimesh.load(path, process=False)
         except Exception as exc:  # trimesh raises many types for broken files
             detail = " ".join(str(exc).split())[:160] or type(exc).__name__
             raise ThickbakeError(f"cannot read the file ({detail})", path=path,
@@ -171,13 +173,13 @@ def _flatten(loaded, where: str):
 
     parts = []
     if isinstance(loaded, trimesh.Trimesh):
-        parts.append(_part(loaded, np.eye(4)))
+        parts.append(_part(loaded, np.eye(4), where))
     elif isinstance(loaded, trimesh.Scene):
         for node in loaded.graph.nodes_geometry:
             transform, geom_name = loaded.graph[node]
             geom = loaded.geometry.get(geom_name)
             if isinstance(geom, trimesh.Trimesh):
-                parts.append(_part(geom, np.asarray(transform, dtype=np.float64)))
+                parts.append(_part(geom, np.asarray(transform, dtype=np.float64), where))
     else:
         raise ThickbakeError("the file holds no triangle mesh", path=where,
                              fix="export the asset as a triangle mesh (not points or lines)")
@@ -188,11 +190,14 @@ def _flatten(loaded, where: str):
     return parts
 
 
-def _part(geom, transform: np.ndarray):
+def _part(geom, transform: np.ndarray, where: str):
     vertices = np.asarray(geom.vertices, dtype=np.float64)
     faces = np.asarray(geom.faces, dtype=np.int64)
     if faces.ndim != 2 or faces.shape[1] != 3:
         faces = np.zeros((0, 3), dtype=np.int64)
+    if len(faces) and (faces.min() < 0 or faces.max() >= len(vertices)):
+        raise ThickbakeError(f"a triangle refers to vertex {int(faces.max())} of {len(vertices)} (corrupt index data)",
+                             path=where, fix="re-export the mesh from your modelling tool")
     uv = getattr(geom.visual, "uv", None)
     if uv is not None:
         uv = np.asarray(uv, dtype=np.float64)

@@ -86,19 +86,19 @@ def json_bytes(data: dict) -> bytes:
     return (json.dumps(data, indent=2, sort_keys=False, allow_nan=False) + "\n").encode()
 
 
-def write_map(path: str | os.PathLike, image: np.ndarray, sidecar: dict,
+def write_map(path: str | os.PathLike, data: bytes, sidecar: dict,
               extra: dict[str, np.ndarray] | None = None) -> None:
-    """Write the map, optional extra float maps (path → (h, w) float32 TIFF) and the sidecar.
+    """Write encoded map bytes, optional extra float maps (path → (h, w) float32 TIFF) and the sidecar.
 
     Every file is encoded in memory first, then each is written atomically, the sidecar last.
     """
     path = Path(path)
-    blobs = [(path, image_bytes(image, path.suffix.lower()))]
+    blobs = [(path, data)]
     for extra_path, array in (extra or {}).items():
         blobs.append((Path(extra_path), image_bytes(array.astype(np.float32), ".tif")))
     blobs.append((sidecar_path(path), json_bytes(sidecar)))
-    for target, data in blobs:
-        atomic_write_bytes(target, data)
+    for target, blob in blobs:
+        atomic_write_bytes(target, blob)
 
 
 def read_sidecar(map_path: str | os.PathLike) -> dict:

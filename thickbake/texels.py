@@ -12,7 +12,7 @@ Which texels get samples
 1. *Centre claims.*  With supersampling K, each texel has K×K sub-positions at the centres of a K×K
    grid of strata (K = 1: the texel centre).  A sub-position inside a UV triangle becomes a surface
    sample of that triangle.  Points exactly on a shared edge go to one triangle only (the top-left
-   fill rule of GPU rasterisers), so adjacent triangles of one island never both claim a texel; a
+   fill rule of GPU rasterisers, evaluated exactly on a 1/256-texel fixed-point grid), so adjacent triangles of one island never both claim a texel; a
    sub-position claimed by two triangles therefore means overlapping UVs (stacked or mirrored
    islands), and the texel averages all its claims.
 2. *Border texels.*  A texel that no sub-position of which lies in any triangle but whose square
@@ -32,6 +32,14 @@ import numpy as np
 #: Candidate (triangle, texel) pairs enumerated at once; bounds the rasteriser's working memory
 #: (about 200 bytes each with supersampling temporaries).
 CANDIDATE_BATCH = 1 << 20
+#: Centre claims are decided on a fixed-point grid of 1/256 texel, as GPU rasterisers do, so edge
+#: functions are exact integers: a texel centre on an edge or a vertex shared by several triangles
+#: goes to exactly one of them.  Pixel coordinates up to 32768·256 = 2^23 keep products below 2^49.
+SUBPIXEL = 256
+#: Samples are kept this many biases away from the edges of their triangle (see keep_off_edges):
+#: enough for the inward bias step not to cross the neighbouring face at edges sharper than 90°,
+#: down to wedges of atan(1/4) ≈ 14°; thinner places are handled by trace.inward_origins.
+EDGE_MARGIN_BIASES = 4.0
 
 
 @dataclass
@@ -75,6 +83,38 @@ def uv_to_pixels(triangle_uv: np.ndarray, width: int, height: int) -> np.ndarray
     px[..., 0] = triangle_uv[..., 0] * width
     px[..., 1] = (1.0 - triangle_uv[..., 1]) * height
     return px
+
+
+def pixel_triangles(triangles: np.ndarray, triangle_uv: np.ndarray, has_uv: np.ndarray, width: int, height: int):
+    """Pixel-space triangles and the world area each texel of them represents.
+
+    Parameters
+    ----------
+    triangles : (f, 3, 3) float64
+        World corner positions, scene units.
+    triangle_uv : (f, 3, 2) float64
+    has_uv : (f,) bool
+    width, height : int
+
+    Returns
+    -------
+    tri_px : (f, 3, 2) float64
+        Pixel coordinates (see :func:`uv_to_pixels`).
+    valid : (f,) bool
+        Triangles with UVs and non-zero UV area.
+    jacobian : (f,) float64
+        World area per texel of UV area, scene units² (0 where invalid).
+    world_area : (f,) float64
+        Triangle areas, scene units².
+    """
+    tri_px = uv_to_pixels(triangle_uv, width, height)
+    e1 = tri_px[:, 1] - tri_px[:, 0]
+    e2 = tri_px[:, 2] - tri_px[:, 0]
+    uv_px_area = np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]) / 2
+    world_area = np.linalg.norm(np.cross(triangles[:, 1] - triangles[:, 0], triangles[:, 2] - triangles[:, 0]), axis=1) / 2
+    valid = has_uv & (uv_px_area > 0)
+    jacobian = np.divide(world_area, uv_px_area, out=np.zeros_like(world_area), where=uv_px_area > 0)
+    return tri_px, valid, jacobian, world_area
 
 
 def tile_buckets(tri_px: np.ndarray, valid: np.ndarray, width: int, height: int, tile: int):
@@ -126,12 +166,13 @@ def tile_buckets(tri_px: np.ndarray, valid: np.ndarray, width: int, height: int,
 
 
 def _edge_setup(p: np.ndarray):
-    """Edge-function coefficients for (t, 3, 2) pixel triangles, oriented to be ≥ 0 inside.
+    """Edge-function coefficients for (t, 3, 2) triangles, oriented to be ≥ 0 inside.
 
     Edge i runs from corner i+1 to corner i+2 (opposite corner i), so the edge function of edge i
-    divided by twice the area is the barycentric weight of corner i.  Returns ``a, b, c`` of
-    E_i(x, y) = a_i·x + b_i·y + c_i, each (t, 3), the signed double area (t,), and the top-left
-    tie flags (t, 3) bool.
+    divided by twice the area is the barycentric weight of corner i.  Works on float pixel
+    coordinates or on integer sub-pixel coordinates (then every value is exact).  Returns ``a, b, c``
+    of E_i(x, y) = a_i·x + b_i·y + c_i, each (t, 3), the absolute double area (t,), and the tie flags
+    (t, 3) bool of the fill rule.
     """
     p1 = p[:, [1, 2, 0]]
     p2 = p[:, [2, 0, 1]]
@@ -140,7 +181,7 @@ def _edge_setup(p: np.ndarray):
     b = p2[..., 0] - p1[..., 0]
     c = -(a * p1[..., 0] + b * p1[..., 1])
     double_area = a[:, 0] * p[:, 0, 0] + b[:, 0] * p[:, 0, 1] + c[:, 0]
-    sign = np.where(double_area < 0, -1.0, 1.0)
+    sign = np.where(double_area < 0, -1, 1).astype(a.dtype)
     a, b, c = a * sign[:, None], b * sign[:, None], c * sign[:, None]
     # A tie (E = 0) is owned by exactly one of the two triangles sharing the edge: the one in which
     # the oriented edge has a > 0, or a == 0 and b > 0 (reversing the edge flips both signs).
@@ -176,10 +217,13 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
     """
     x0, y0 = tile_col * tile, tile_row * tile
     x1, y1 = min(x0 + tile, width), min(y0 + tile, height)
-    a, b, c, double_area, tie = _edge_setup(tri_px)
-    keep = double_area > 0
+    fixed = np.rint(tri_px * SUBPIXEL).astype(np.int64)
+    ia, ib, ic, idouble_area, tie = _edge_setup(fixed)
+    a, b, c, double_area, _ = _edge_setup(tri_px)
+    keep = (double_area > 0) & (idouble_area > 0)
     tri_px, tri_index, jacobian = tri_px[keep], tri_index[keep], jacobian[keep]
-    a, b, c, double_area, tie = a[keep], b[keep], c[keep], double_area[keep], tie[keep]
+    a, b, c, double_area = a[keep], b[keep], c[keep], double_area[keep]
+    ia, ib, ic, idouble_area, tie = ia[keep], ib[keep], ic[keep], idouble_area[keep], tie[keep]
 
     lo = np.floor(tri_px.min(axis=1)).astype(np.int64)
     hi = np.ceil(tri_px.max(axis=1)).astype(np.int64) - 1
@@ -193,8 +237,8 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
 
     k2 = supersample * supersample
     sub_i = np.arange(k2)
-    sub_dx = (sub_i % supersample + 0.5) / supersample
-    sub_dy = (sub_i // supersample + 0.5) / supersample
+    sub_dx = np.rint((sub_i % supersample + 0.5) / supersample * SUBPIXEL).astype(np.int64)
+    sub_dy = np.rint((sub_i // supersample + 0.5) / supersample * SUBPIXEL).astype(np.int64)
 
     claims = []      # (texel, sub, local tri, bary...) for centre claims
     touched = []     # (texel, local tri) for texels whose square touches a triangle
@@ -216,12 +260,12 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
         # centre claims at the sub-positions
         tt = t[touches]
         colt, rowt = col[touches], row[touches]
-        qx = colt[:, None] + sub_dx[None, :]
-        qy = rowt[:, None] + sub_dy[None, :]
-        e = (a[tt][:, None, :] * qx[..., None] + b[tt][:, None, :] * qy[..., None] + c[tt][:, None, :])
+        qx = colt[:, None] * SUBPIXEL + sub_dx[None, :]
+        qy = rowt[:, None] * SUBPIXEL + sub_dy[None, :]
+        e = (ia[tt][:, None, :] * qx[..., None] + ib[tt][:, None, :] * qy[..., None] + ic[tt][:, None, :])
         inside = ((e > 0) | ((e == 0) & tie[tt][:, None, :])).all(axis=2)
         ci, si = np.nonzero(inside)
-        bary = e[ci, si] / double_area[tt[ci], None]
+        bary = e[ci, si] / idouble_area[tt[ci], None].astype(np.float64)
         claims.append((rowt[ci] * width + colt[ci], si, tt[ci], bary))
 
     if claims:
@@ -369,6 +413,22 @@ def keep_off_edges(triangles: np.ndarray, face: np.ndarray, bary: np.ndarray, ma
         step = np.where(short, (need - bary) / np.maximum(1.0 / 3.0 - bary, 1e-300), 0.0)
     lam = np.clip(step.max(axis=1), 0.0, 1.0)[:, None]
     return (1 - lam) * bary + lam / 3.0
+
+
+def place_samples(triangles: np.ndarray, triangle_normals: np.ndarray, face_normals: np.ndarray,
+                  samples: SurfaceSamples, bias: float):
+    """Where the bake puts each sample: kept off triangle edges, then interpolated.
+
+    The one place that turns rasterised samples into ray start points, shared by the bake and by
+    ``thickbake verify`` so the two cannot drift apart.
+
+    Returns
+    -------
+    positions, normals : (n, 3) float64
+        As :func:`surface_points`, after :func:`keep_off_edges` with ``EDGE_MARGIN_BIASES · bias``.
+    """
+    bary = keep_off_edges(triangles, samples.face, samples.bary, EDGE_MARGIN_BIASES * bias)
+    return surface_points(triangles, triangle_normals, face_normals, samples.face, bary)
 
 
 def surface_points(triangles: np.ndarray, triangle_normals: np.ndarray, face_normals: np.ndarray,

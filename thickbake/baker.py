@@ -29,7 +29,8 @@ from .mesh import Asset, load_asset
 from .output import check_output_path, write_map
 from .padding import pad_map
 from .settings import BakeSettings
-from .texels import keep_off_edges, morton_order, rasterise_tile, surface_points, tile_buckets, uv_to_pixels
+from .trace import inward_origins
+from .texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
 
 #: First batch of rays per sample in adaptive mode; later batches double the count, so every sample
 #: ends on a power-of-two prefix of its low-discrepancy sequence.  16 rays give a usable variance
@@ -39,8 +40,6 @@ ADAPTIVE_FIRST_BATCH = 16
 #: (~12 bytes a ray each) stay in the core's L2 cache while numpy builds them, large enough that the
 #: per-call overhead is negligible.
 RAYS_PER_CALL = 1 << 16
-#: Samples are kept this many biases away from the edges of their triangle (see keep_off_edges).
-EDGE_MARGIN_BIASES = 4.0
 
 
 @dataclass
@@ -116,23 +115,31 @@ class BakeResult:
             }
         return data
 
+    def image(self, suffix: str) -> np.ndarray:
+        """The array a map file of this suffix holds: (h, w) uint16/uint8 codes for ``.png``, float32
+        measure for ``.tif``/``.tiff`` (both padded)."""
+        return self.codes() if suffix.lower() == ".png" else self.padded().astype(np.float32)
+
+    def encode(self, map_name: str) -> tuple[bytes, dict]:
+        """The map file's bytes and its sidecar for a map called ``map_name`` (suffix picks the format)."""
+        from .output import image_bytes
+
+        suffix = Path(map_name).suffix.lower()
+        return image_bytes(self.image(suffix), suffix), self.sidecar(map_name)
+
     def write(self, map_path: str | os.PathLike, error_out: str | os.PathLike | None = None) -> Path:
         """Write the map (PNG codes or float32 TIFF of the measure) and its sidecar, atomically."""
         path = check_output_path(map_path)
-        if path.suffix.lower() == ".png":
-            image = self.codes()
-        else:
-            padded = self.padded()
-            image = padded.astype(np.float32)
-        sidecar = self.sidecar(path)
         extra = {}
         if error_out is not None:
             err_path = Path(error_out)
             if err_path.suffix.lower() not in (".tif", ".tiff"):
                 raise ThickbakeError("the error map must be a float TIFF", path=err_path, fix="name it .tif")
             extra[err_path] = self.stderr
-            sidecar["error_map"] = err_path.name
-        write_map(path, image, sidecar, extra)
+        data, sidecar = self.encode(path.name)
+        if error_out is not None:
+            sidecar["error_map"] = Path(error_out).name
+        write_map(path, data, sidecar, extra)
         return path
 
 
@@ -192,15 +199,7 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
         engine = make_engine(asset.trace_vertices, asset.trace_faces)
     width, height = s.size
 
-    tri_px = uv_to_pixels(asset.triangle_uv, width, height)
-    e1 = tri_px[:, 1] - tri_px[:, 0]
-    e2 = tri_px[:, 2] - tri_px[:, 0]
-    uv_px_area = np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]) / 2
-    w1 = asset.triangles[:, 1] - asset.triangles[:, 0]
-    w2 = asset.triangles[:, 2] - asset.triangles[:, 0]
-    world_area = np.linalg.norm(np.cross(w1, w2), axis=1) / 2
-    valid = asset.has_uv & (uv_px_area > 0)
-    jacobian = np.divide(world_area, uv_px_area, out=np.zeros_like(world_area), where=uv_px_area > 0)
+    tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, asset.triangle_uv, asset.has_uv, width, height)
 
     rays_per_sample = 1 if s.cone == 0 else s.rays
     tile = _tile_side(s.chunk_rays, rays_per_sample, s.supersample, width, height)
@@ -212,7 +211,8 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
         area=np.zeros((height, width), np.float32), rays=np.zeros((height, width), np.int32),
         claims=np.zeros((height, width), np.uint16),
     )
-    totals = {"rays": 0, "misses": 0, "overlapped": 0, "samples": 0, "rays_cap": 0}
+    totals = {"rays": 0, "misses": 0, "overlapped": 0, "samples": 0, "rays_cap": 0, "origins_moved": 0,
+              "origins_outside": 0}
     lock = threading.Lock()
     done = [0]
 
@@ -260,6 +260,8 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
         "rays_traced": int(totals["rays"]),
         "rays_saved": int(totals["rays_cap"] - totals["rays"]),
         "surface_samples": int(totals["samples"]),
+        "origins_closer": int(totals["origins_moved"]),
+        "origins_outside": int(totals["origins_outside"]),
         "seconds": round(seconds, 3),
         "rays_per_second": totals["rays"] / max(seconds, 1e-9),
         "engine": getattr(engine, "name", type(engine).__name__),
@@ -306,16 +308,13 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray,
                                          ctx.tile, width, s.height, s.supersample)
     n = len(samples)
     if n == 0:
-        return {"rays": 0, "misses": 0, "overlapped": 0, "samples": 0, "rays_cap": 0}
+        return {"rays": 0, "misses": 0, "overlapped": 0, "samples": 0, "rays_cap": 0, "origins_moved": 0,
+                "origins_outside": 0}
     if s.order == "morton":
         samples = samples.take(morton_order(samples.texel, width))
-    # origins step `bias` inward; keep samples 4·bias from triangle edges so that step cannot cross
-    # the neighbouring face at a sharp edge (safe for wedges down to atan(1/4) ≈ 14°)
-    bary = keep_off_edges(asset.triangles, samples.face, samples.bary, EDGE_MARGIN_BIASES * s.bias)
-    positions, normals = surface_points(asset.triangles, asset.triangle_normals, asset.face_normals,
-                                        samples.face, bary)
+    positions, normals = place_samples(asset.triangles, asset.triangle_normals, asset.face_normals, samples, s.bias)
     keys = sample_keys(samples.texel, samples.sub, samples.face)
-    origins = (positions - s.bias * normals).astype(np.float32)
+    origins, sample_bias, unresolved = inward_origins(ctx.engine, positions, normals, asset.face_normals, s.bias)
     axis = (-normals).astype(np.float32)
     moments = Moments(n)
     misses = 0
@@ -331,8 +330,10 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray,
             directions, cos_theta = ray_directions(u1, u2, axis[idx], s.cone, s.lobe)
             ray_origins = np.repeat(origins[idx], k, axis=0)
             distance, hit = ctx.engine.first_hit(ray_origins, directions, s.reach)
-            # chord from the surface point, not from the biased origin: first order in bias
-            chord = distance.reshape(len(idx), k) + np.float32(s.bias) * cos_theta
+            # chord from the surface point rather than the biased origin: adding bias·cosθ removes the
+            # bias exactly along the normal; off the normal a residual of order bias·(1−cos²θ)/cosθ
+            # remains, whose sign depends on the curvature at the exit (no universal correction)
+            chord = distance.reshape(len(idx), k) + sample_bias[idx, None] * cos_theta
             hit = hit.reshape(len(idx), k)
             moments.add(idx, ray_values(chord, hit, s.measure, s.reach, s.attenuation_distance))
             misses += int(hit.size - np.count_nonzero(hit))
@@ -351,4 +352,5 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray,
     ctx.rays[rows, cols] = rays
     ctx.claims[rows, cols] = np.minimum(claims, 65535)
     return {"rays": traced, "misses": misses, "overlapped": overlapped, "samples": n,
-            "rays_cap": n * rays_per_sample}
+            "rays_cap": n * rays_per_sample, "origins_moved": int((sample_bias < s.bias).sum()),
+            "origins_outside": unresolved}
