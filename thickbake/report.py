@@ -1,0 +1,279 @@
+"""Batch report: ``report.json`` (figures per asset and for the batch) and ``report.html`` (a contact sheet).
+
+The HTML page is self-contained — inline CSS, each map's thumbnail embedded as a base64 PNG — so it
+can be mailed or archived on its own.  Failures come first, each with its one-line error; then every
+asset that has a map, baked in this run or skipped as up to date, with its figures.
+
+>>> import numpy as np
+>>> png = thumbnail_png(np.full((64, 64), 40000, np.uint16))
+>>> png[:8] == b"\\x89PNG\\r\\n\\x1a\\n"
+True
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import os
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+
+#: Longest side of a thumbnail in pixels: large enough to recognise a UV layout, small enough that a
+#: thousand assets stay a page of a few megabytes.
+THUMBNAIL_SIDE = 128
+#: Percentile of a map's values shown as white in its thumbnail (see :func:`thumbnail_png`).
+THUMBNAIL_WHITE_PERCENTILE = 99.5
+REPORT_JSON = "report.json"
+REPORT_HTML = "report.html"
+
+#: Order of the status groups on the page.
+STATUS_ORDER = {"failed": 0, "not started": 1, "baked": 2, "skipped": 3}
+
+
+def thumbnail_png(image: np.ndarray, side: int = THUMBNAIL_SIDE) -> bytes:
+    """An 8-bit grayscale PNG of a map, at most ``side`` pixels on its longest side.
+
+    Brightness is stretched per map (0 stays black, the 99.5th percentile becomes white), so a
+    thumbnail shows the layout and its variation; the figures beside it give the values.
+
+    Parameters
+    ----------
+    image : (h, w) uint8, uint16 or float32
+        Map as stored: integer codes (PNG) or the measure itself (float TIFF).
+    side : int
+        Longest side of the thumbnail in pixels.
+    """
+    from PIL import Image
+
+    image = np.asarray(image)
+    if image.ndim == 3:
+        image = image[..., 0]
+    level = np.nan_to_num(image.astype(np.float64))
+    # Black stays 0; white is the map's own bright end, so thin and thick assets both read well.
+    # The 99.5th percentile keeps a few hot texels from darkening the rest.
+    white = np.percentile(level, THUMBNAIL_WHITE_PERCENTILE) if level.size else 0.0
+    if not white > 0:
+        white = level.max() if level.size and level.max() > 0 else 1.0
+    gray = np.round(np.clip(level / white, 0.0, 1.0) * 255).astype(np.uint8)
+    h, w = gray.shape
+    scale = min(1.0, side / max(h, w))
+    size = (max(1, round(w * scale)), max(1, round(h * scale)))
+    picture = Image.fromarray(gray)
+    if size != (w, h):
+        picture = picture.resize(size, Image.Resampling.BOX)
+    buffer = io.BytesIO()
+    picture.save(buffer, format="PNG", optimize=True)
+    return buffer.getvalue()
+
+
+def thumbnail_from_file(map_path: str | os.PathLike) -> bytes | None:
+    """Thumbnail of a map on disk, or None if it cannot be read."""
+    from .errors import ThickbakeError
+    from .output import read_image
+
+    try:
+        return thumbnail_png(read_image(map_path))
+    except ThickbakeError:
+        return None
+
+
+def write_reports(out_dir: str | os.PathLike, report: dict, thumbnails: dict[str, bytes]) -> tuple[Path, Path]:
+    """Write ``report.json`` and ``report.html`` into ``out_dir`` atomically; return their paths.
+
+    ``thumbnails`` maps an asset's source path (as in ``report["assets"][i]["source"]``) to PNG bytes.
+    """
+    from .output import atomic_write_bytes, json_bytes
+
+    out_dir = Path(out_dir)
+    json_path = out_dir / REPORT_JSON
+    html_path = out_dir / REPORT_HTML
+    atomic_write_bytes(json_path, json_bytes(report))
+    atomic_write_bytes(html_path, render_html(report, thumbnails).encode("utf-8"))
+    return json_path, html_path
+
+
+# ---------------------------------------------------------------------------- report content
+def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: int,
+                 threads: int | None, cluster: str | None, force: bool, interrupted: bool) -> dict:
+    """The content of ``report.json`` for a :class:`thickbake.batch.BatchPlan` whose jobs have run."""
+    rows = [_report_row(job) for job in plan.jobs]
+    count = {status: sum(1 for r in rows if r["status"] == status)
+             for status in ("baked", "skipped", "failed", "not started")}
+    baked = [j for j in plan.jobs if j.status == "baked"]
+    return {
+        "thickbake_version": __version__,
+        "source": str(plan.src),
+        "output": str(plan.out),
+        "rules_file": str(plan.rules.path.resolve()) if plan.rules.path else None,
+        "started": started_at.isoformat(timespec="seconds"),
+        "finished": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "seconds": round(seconds, 3),
+        "cores": cores,
+        "jobs": jobs,
+        "threads_per_bake": threads,
+        "cluster": cluster,
+        "forced": force,
+        "interrupted": interrupted,
+        "totals": {
+            "assets": len(rows),
+            "baked": count["baked"],
+            "skipped": count["skipped"],
+            "failed": count["failed"],
+            "not_started": count["not started"],
+            "rays_traced": sum(int(j.sidecar.get("rays_traced", 0)) for j in baked),
+            "bake_seconds": round(sum(float(j.sidecar.get("seconds", 0.0)) for j in baked), 3),
+        },
+        "assets": rows,
+    }
+
+
+def _report_row(job) -> dict:
+    side = job.sidecar if job.status in ("baked", "skipped") and job.sidecar else {}
+    row = {
+        "source": job.rel,
+        "map": job.map_rel,
+        "sidecar": job.sidecar_rel,
+        "status": job.status,
+        "reason": job.reason,
+        "error": job.error,
+        "failure_kind": job.failure_kind,
+        "seconds": side.get("seconds"),
+        "rays_traced": side.get("rays_traced"),
+        "rays_per_second": side.get("rays_per_second"),
+        "coverage": side.get("coverage"),
+        "stats": side.get("stats"),
+        "size": side.get("size"),
+        "measure": side.get("measure"),
+        "settings_hash": side.get("settings_hash"),
+        "requested_settings_hash": job.requested_hash,
+        "inputs_sha256": job.inputs_sha256,
+        "settings": job.options.settings,
+        "format": job.options.format,
+        "rules": list(job.options.rules),
+        "worker_seconds": job.worker_seconds,
+        "threads": job.threads,
+        "worker": job.worker,
+        "warnings": job.warnings or (side.get("mesh") or {}).get("warnings", []),
+    }
+    if job.traceback:
+        row["traceback"] = job.traceback
+    return row
+
+
+def batch_thumbnails(plan) -> dict[str, bytes]:
+    """Thumbnail per asset with a map: from the bake, or read from the map on disk when skipped."""
+    thumbs = {}
+    for job in plan.jobs:
+        if job.status == "baked" and job.thumbnail:
+            thumbs[job.rel] = job.thumbnail
+        elif job.status == "skipped":
+            picture = thumbnail_from_file(plan.out / job.map_rel)
+            if picture:
+                thumbs[job.rel] = picture
+    return thumbs
+
+
+# ---------------------------------------------------------------------------- HTML
+_CSS = """
+body{font:14px/1.4 system-ui,-apple-system,"Segoe UI",sans-serif;margin:24px;color:#222;background:#fafafa}
+h1{font-size:20px;margin:0 0 4px}h2{font-size:16px;margin:24px 0 8px}
+.totals{color:#555;margin:0 0 16px}.totals b{color:#222}
+.failures{list-style:none;padding:0;margin:0}
+.failures li{background:#fdecea;border-left:4px solid #c62828;padding:6px 10px;margin:4px 0;font-family:ui-monospace,monospace;font-size:12px;word-break:break-word}
+.sheet{display:grid;grid-template-columns:repeat(auto-fill,minmax(180px,1fr));gap:12px}
+.card{background:#fff;border:1px solid #ddd;border-radius:6px;padding:8px;margin:0}
+.card.failed{border-color:#c62828}.card.skipped{opacity:.85}
+.card img,.card .empty{display:block;width:128px;height:128px;margin:0 auto 6px;object-fit:contain;image-rendering:pixelated;background:#000}
+.card .empty{background:repeating-linear-gradient(45deg,#eee,#eee 6px,#f8f8f8 6px,#f8f8f8 12px);color:#999;text-align:center;line-height:128px;font-size:12px}
+.card figcaption{font-size:12px}.name{font-weight:600;word-break:break-all}
+.badge{display:inline-block;font-size:11px;padding:0 6px;border-radius:8px;color:#fff;margin-left:4px}
+.badge.baked{background:#2e7d32}.badge.skipped{background:#757575}.badge.failed{background:#c62828}.badge.not-started{background:#ef6c00}
+dl{display:grid;grid-template-columns:auto 1fr;gap:0 8px;margin:4px 0 0}dt{color:#777}dd{margin:0;font-variant-numeric:tabular-nums}
+.error{color:#c62828;font-family:ui-monospace,monospace;font-size:11px;word-break:break-word}
+"""
+
+
+def render_html(report: dict, thumbnails: dict[str, bytes]) -> str:
+    """The contact sheet as one HTML string (no external resources)."""
+    esc = html.escape
+    totals = report["totals"]
+    rows = sorted(report["assets"], key=lambda r: (STATUS_ORDER.get(r["status"], 9), r["source"]))
+    failed = [r for r in rows if r["status"] == "failed"]
+    parts = [
+        "<!doctype html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        f"<title>thickbake batch report: {esc(report['source'])}</title>",
+        f"<style>{_CSS}</style></head><body>",
+        f"<h1>Thickness maps of {esc(report['source'])}</h1>",
+        '<p class="totals">'
+        f"<b>{totals['assets']}</b> assets: <b>{totals['baked']}</b> baked, "
+        f"<b>{totals['skipped']}</b> skipped (up to date), "
+        f"<b>{totals['failed']}</b> failed"
+        + (f", <b>{totals['not_started']}</b> not started (interrupted)" if totals.get("not_started") else "")
+        + f" · {report['jobs']} job{'s' if report['jobs'] != 1 else ''} × {_threads_text(report['threads_per_bake'])}"
+        f" · {report['seconds']:.1f} s · {_rays_text(totals.get('rays_traced', 0))} traced"
+        + (f" · cluster {esc(report['cluster'])}" if report.get("cluster") else "")
+        + f" · thickbake {esc(report['thickbake_version'])} · {esc(report['finished'])}</p>",
+        '<p class="totals">Thumbnails are scaled per map (black 0, white its brightest texels); '
+        "min/mean/max are in scene units for thickness, unitless otherwise.</p>",
+    ]
+    if failed:
+        parts.append(f"<h2>Failed ({len(failed)})</h2><ul class=\"failures\">")
+        for row in failed:
+            parts.append(f"<li><b>{esc(row['source'])}</b>: {esc(row.get('error') or 'unknown error')}</li>")
+        parts.append("</ul>")
+    parts.append("<h2>Maps</h2><div class=\"sheet\">")
+    for row in rows:
+        parts.append(_card(row, thumbnails.get(row["source"])))
+    parts.append("</div></body></html>\n")
+    return "\n".join(parts)
+
+
+def _card(row: dict, thumbnail: bytes | None) -> str:
+    esc = html.escape
+    status = row["status"]
+    css = status.replace(" ", "-")
+    if thumbnail:
+        data = base64.b64encode(thumbnail).decode("ascii")
+        picture = f'<img alt="{esc(row["map"])}" src="data:image/png;base64,{data}">'
+    else:
+        picture = '<div class="empty">no map</div>'
+    figures = []
+    if row.get("size"):
+        figures.append(("size", f"{row['size'][0]}×{row['size'][1]}"))
+    if row.get("coverage") is not None:
+        figures.append(("coverage", f"{row['coverage']:.1%}"))
+    stats = row.get("stats")
+    if stats:
+        figures.append(("measure", row.get("measure") or "?"))
+        figures.append(("min/mean/max", f"{stats['min']:.3g} / {stats['mean']:.3g} / {stats['max']:.3g}"))
+    if row.get("seconds") is not None:
+        figures.append(("bake", f"{row['seconds']:.2f} s"))
+    if row.get("rays_per_second"):
+        figures.append(("rays/s", f"{row['rays_per_second'] / 1e6:.2f} M"))
+    if row.get("settings_hash"):
+        figures.append(("settings", row["settings_hash"][:12]))
+    dl = "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in figures)
+    error = f'<div class="error">{esc(row["error"])}</div>' if row.get("error") else ""
+    note = f'<div class="error">{esc(row["reason"])}</div>' if status == "not started" and row.get("reason") else ""
+    return (f'<figure class="card {css}">{picture}<figcaption><span class="name">{esc(row["source"])}</span>'
+            f'<span class="badge {css}">{esc(status)}</span>{error}{note}<dl>{dl}</dl></figcaption></figure>')
+
+
+def _threads_text(threads) -> str:
+    if threads is None:
+        return "threads chosen per worker"
+    return f"{threads} thread{'s' if threads != 1 else ''} per bake"
+
+
+def _rays_text(rays: int) -> str:
+    return f"{rays / 1e6:.1f}M rays" if rays >= 1e5 else f"{rays:,} rays"
+
+
+__all__ = ["build_report", "batch_thumbnails", "thumbnail_png", "thumbnail_from_file", "write_reports", "render_html",
+           "REPORT_JSON", "REPORT_HTML", "THUMBNAIL_SIDE"]

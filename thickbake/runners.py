@@ -1,0 +1,296 @@
+"""Where a batch's bakes run: the per-asset worker, a local process pool, a dask.distributed cluster.
+
+:func:`bake_asset` is a pure function — a task dict (paths and settings) in, a result dict (the
+encoded map, its sidecar, a thumbnail) out, no files written — so the same function runs in a pool
+process on this machine or on a cluster worker, and the batch alone writes to the output folder.
+
+Both runners answer the same small interface used by :mod:`thickbake.batch`: ``capacity()`` (bakes
+to keep in flight), ``submit(task)`` → handle, ``wait(handles, timeout)`` → finished handles,
+``outcome(handle)`` → result dict (or :class:`WorkerDied` when a pool process died), ``restart()``,
+``abandon()`` and ``close()``.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import hashlib
+import multiprocessing
+import os
+import signal
+import socket
+import threading
+import time
+import traceback
+from pathlib import Path
+from typing import Callable
+
+from .errors import ThickbakeError
+from .rules import FORMATS
+from .settings import BakeSettings
+
+#: Modules the fork server imports once, so that pool processes start without importing them.
+_POOL_PRELOAD = ["thickbake.runners", "thickbake.batch", "thickbake.baker", "thickbake.mesh", "thickbake.trace",
+                 "thickbake.report", "trimesh", "embreex.rtcore_scene", "scipy.stats.qmc", "PIL.PngImagePlugin",
+                 "PIL.TiffImagePlugin"]
+#: How long to try reaching a dask scheduler before giving up.
+CLUSTER_CONNECT_SECONDS = 10
+
+
+def available_cores() -> int:
+    """Cores this process may use (the affinity mask where the platform has one)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+def bake_asset(task: dict) -> dict:
+    """Bake one asset; a pure function shared by the local pool and the cluster.
+
+    Parameters
+    ----------
+    task : dict
+        ``source`` (absolute mesh path), ``map_name`` (file name of the map, for the sidecar),
+        ``format`` (``"png"`` or ``"tif"``), ``settings`` (BakeSettings fields as given),
+        ``threads`` (int or None: all cores of this machine over the tasks it runs at once) and
+        ``batch`` (dict recorded in the sidecar under ``"batch"``).
+
+    Returns
+    -------
+    dict
+        ``status`` (``"baked"`` or ``"failed"``), ``error`` (one line or None), ``failure``
+        (``"user"`` for the user's mistakes, which fail again on the same input; ``"user-remote"``
+        for those on a dask worker; else ``"internal"`` or ``"resources"``), ``traceback``
+        (internal errors only), ``map_bytes`` (the encoded map), ``sidecar`` (dict), ``thumbnail``
+        (PNG bytes), ``threads``, ``worker`` (host name), ``worker_seconds`` and ``warnings``.
+        Nothing is written to disk.
+    """
+    start = time.perf_counter()
+    out = {"status": "failed", "error": None, "failure": None, "traceback": None, "threads": None,
+           "worker": _worker_name()}
+    try:
+        out.update(_bake_asset(task))
+        out["status"] = "baked"
+    except ThickbakeError as exc:
+        remote = _on_which_worker()
+        # on a cluster the cause may be the worker's view of the files, so it is not remembered
+        out["error"], out["failure"] = exc.one_line() + remote, "user-remote" if remote else "user"
+    except MemoryError:
+        out["error"] = f"{task['source']}: out of memory; bake a smaller size or run fewer --jobs"
+        out["failure"] = "resources"
+    except Exception as exc:  # a bug, not the user's mistake: keep the traceback for the report
+        detail = " ".join(str(exc).split())[:200]
+        out["error"] = f"{task['source']}: internal error ({type(exc).__name__}: {detail}); please report it"
+        out["failure"], out["traceback"] = "internal", traceback.format_exc()
+    out["worker_seconds"] = round(time.perf_counter() - start, 3)
+    return out
+
+
+def _bake_asset(task: dict) -> dict:
+    from .baker import bake
+    from .mesh import load_asset
+    from .report import thumbnail_png
+
+    settings = BakeSettings.from_mapping(task["settings"], where=task["source"])
+    if settings.threads is None:
+        settings = settings.replace(threads=task.get("threads") or _threads_here())
+    asset = load_asset(task["source"])
+    result = bake(asset, settings)
+    suffix = FORMATS[task["format"]]
+    assert Path(task["map_name"]).suffix.lower() == suffix
+    image = result.image(suffix)
+    data, sidecar = result.encode(task["map_name"])
+    sidecar["batch"] = dict(task["batch"], map_sha256=hashlib.sha256(data).hexdigest())
+    return {"map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
+            "threads": settings.threads, "warnings": list(asset.report.warnings)}
+
+
+def _threads_here() -> int:
+    """Threads for one bake on this machine: its cores over the tasks a dask worker runs at once."""
+    try:
+        from distributed import get_worker
+
+        worker = get_worker()
+        slots = getattr(worker, "nthreads", None) or getattr(getattr(worker, "state", None), "nthreads", 1)
+    except (ImportError, ValueError):
+        slots = 1
+    return max(1, available_cores() // max(1, int(slots)))
+
+
+def _on_which_worker() -> str:
+    """`` (on dask worker ADDRESS)`` inside a dask worker, else empty: a cluster's paths may differ."""
+    try:
+        from distributed import get_worker
+
+        return f" (on dask worker {get_worker().address})"
+    except (ImportError, ValueError, AttributeError):
+        return ""
+
+
+def _worker_name() -> str:
+    try:
+        return socket.gethostname()
+    except OSError:
+        return "unknown"
+
+
+def _worker_start(batch_pid: int) -> None:
+    """Pool process set-up: Ctrl-C is the batch's to handle, and a dead batch ends the process."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    threading.Thread(target=_watch_batch, args=(batch_pid, os.getppid()), daemon=True).start()
+
+
+def _watch_batch(batch_pid: int, parent_pid: int) -> None:
+    # Under spawn the parent is the batch; under forkserver it is the fork server, which outlives a
+    # killed batch for as long as its pool processes live, so the batch's own pid is watched too.
+    while True:
+        time.sleep(1.0)
+        if os.getppid() != parent_pid or (os.name == "posix" and not _process_alive(batch_pid)):
+            os._exit(1)  # the batch was killed: a result would go nowhere
+
+
+def _process_alive(pid: int) -> bool:
+    """POSIX only (on Windows ``os.kill`` would end the process)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # the pid now belongs to another user's process
+        return False
+    except OSError:
+        return True
+    try:  # a killed batch its parent has not reaped yet is a zombie
+        with open(f"/proc/{pid}/stat", "rb") as handle:
+            return handle.read().rsplit(b")", 1)[1].split()[0] != b"Z"
+    except (OSError, IndexError):
+        return True
+
+
+def _pool_context():
+    """``forkserver`` with the bake modules preloaded where available, else ``spawn``."""
+    if "forkserver" in multiprocessing.get_all_start_methods():
+        context = multiprocessing.get_context("forkserver")
+        context.set_forkserver_preload(_POOL_PRELOAD)  # no effect once the server runs
+        return context
+    return multiprocessing.get_context("spawn")
+
+
+# ---------------------------------------------------------------------------- runners
+class WorkerDied(Exception):
+    """The process running a bake died (crash, OOM killer, kill)."""
+
+
+class LocalRunner:
+    """A process pool of ``jobs`` processes (see :func:`_pool_context`)."""
+
+    def __init__(self, jobs: int, worker: Callable[[dict], dict]):
+        self.jobs = jobs
+        self.worker = worker
+        self._pool: cf.ProcessPoolExecutor | None = None
+
+    def capacity(self) -> int:
+        return self.jobs
+
+    def submit(self, task: dict):
+        if self._pool is None:
+            self._pool = cf.ProcessPoolExecutor(max_workers=self.jobs, mp_context=_pool_context(),
+                                                initializer=_worker_start, initargs=(os.getpid(),))
+        return self._pool.submit(self.worker, task)
+
+    def wait(self, handles, timeout: float):
+        return cf.wait(handles, timeout=timeout, return_when=cf.FIRST_COMPLETED)[0]
+
+    def outcome(self, handle) -> dict:
+        try:
+            return handle.result()
+        except cf.process.BrokenProcessPool:
+            raise WorkerDied from None
+        except Exception as exc:  # e.g. a result that cannot be sent back
+            return {"status": "failed", "error": f"the bake process failed ({type(exc).__name__}: {exc})"}
+
+    def restart(self) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+
+    def abandon(self) -> None:
+        if self._pool is None:
+            return
+        for process in list(getattr(self._pool, "_processes", {}).values()):
+            try:
+                process.terminate()
+            except Exception:
+                pass
+        self._pool.shutdown(wait=False, cancel_futures=True)
+        self._pool = None
+
+    def close(self) -> None:
+        self.restart()
+
+
+class ClusterRunner:
+    """Bakes on a dask.distributed cluster through a client connected to its scheduler."""
+
+    def __init__(self, address: str, jobs: int | None, worker: Callable[[dict], dict]):
+        try:
+            import distributed
+        except ImportError:
+            raise ThickbakeError("--cluster needs dask.distributed", fix='pip install "thickbake[cluster]"') from None
+        try:
+            self.client = distributed.Client(address, timeout=f"{CLUSTER_CONNECT_SECONDS}s")
+        except Exception as exc:
+            detail = " ".join(str(exc).split())[:160] or type(exc).__name__
+            raise ThickbakeError(f"cannot reach the dask scheduler at {address} ({detail})",
+                                 fix="start one with 'dask scheduler' and workers with 'dask worker tcp://HOST:8786', "
+                                     "then pass --cluster tcp://HOST:8786") from None
+        self.address = address
+        self.jobs = jobs
+        self.worker = worker
+        self._slots = (0.0, 1)
+
+    def capacity(self) -> int:
+        if self.jobs:
+            return self.jobs
+        checked, slots = self._slots
+        if time.monotonic() - checked > 2.0:
+            try:
+                slots = max(1, sum(self.client.nthreads().values()))
+            except Exception:
+                pass
+            self._slots = (time.monotonic(), slots)
+        return slots
+
+    def submit(self, task: dict):
+        return self.client.submit(self.worker, task, pure=False)
+
+    def wait(self, handles, timeout: float):
+        deadline = time.monotonic() + timeout
+        while True:
+            done = [h for h in handles if h.done()]
+            if done or time.monotonic() >= deadline:
+                return done
+            time.sleep(0.05)
+
+    def outcome(self, handle) -> dict:
+        try:
+            return handle.result()
+        except Exception as exc:
+            detail = " ".join(str(exc).split())[:200]
+            return {"status": "failed", "error": f"the cluster could not bake it ({type(exc).__name__}: {detail})"}
+
+    def restart(self) -> None:  # dask reschedules tasks of lost workers itself
+        pass
+
+    def abandon(self) -> None:
+        pass
+
+    def close(self, running=()) -> None:
+        try:
+            if running:
+                self.client.cancel(list(running))
+            self.client.close()
+        except Exception:
+            pass
+
+
+__all__ = ["bake_asset", "LocalRunner", "ClusterRunner", "WorkerDied", "available_cores"]
