@@ -24,11 +24,11 @@ import trimesh
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout without installing
 
-from thickbake.shapes import (  # noqa: E402
+from thickbake.output import atomic_write_bytes  # noqa: E402
+from thickbake.surfaces import (  # noqa: E402
     Surface,
     arc_piece,
     assemble_mesh,
-    atomic_write_bytes,
     glb_bytes,
     line_piece,
     obj_bytes,

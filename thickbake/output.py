@@ -18,14 +18,19 @@ import numpy as np
 from .errors import ThickbakeError
 
 IMAGE_SUFFIXES = (".png", ".tif", ".tiff")
+#: The process umask, read once: ``tempfile.mkstemp`` creates 0600 files, and outputs should get the
+#: same permissions as any file the user creates (0644 under the usual umask 022).
+_UMASK = os.umask(0)
+os.umask(_UMASK)
 
 
-def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> None:
+def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
     """Write ``data`` to ``path`` via a temporary file in the same folder and ``os.replace``."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        os.fchmod(fd, 0o666 & ~_UMASK)
         with os.fdopen(fd, "wb") as handle:
             handle.write(data)
             handle.flush()
@@ -37,6 +42,7 @@ def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> None:
         except OSError:
             pass
         raise
+    return path
 
 
 def image_bytes(array: np.ndarray, suffix: str) -> bytes:
