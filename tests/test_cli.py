@@ -104,3 +104,16 @@ def test_error_out_and_tiff(box_obj, tmp_path):
     from thickbake.output import read_image
     err = read_image(tmp_path / "m_err.tif")
     assert err.dtype == np.float32 and err.max() > 0
+
+
+def test_batch_dry_run_on_bundled_samples(tmp_path):
+    # the README's batch command on samples/, as a dry run: the rules file gives the leaf its own measure
+    from pathlib import Path
+
+    samples = Path(__file__).resolve().parent.parent / "samples"
+    out = tmp_path / "out"
+    proc = run("batch", samples, "-o", out, "--dry-run")
+    assert proc.returncode == 0, proc.stderr
+    assert "garden/leaf.obj -> garden/leaf.transmittance.png: bake" in proc.stdout
+    assert "candle.glb -> candle.thickness.png: bake" in proc.stdout
+    assert not out.exists()

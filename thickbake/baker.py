@@ -230,9 +230,15 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
         for i in range(len(tiles)):
             run(i)
     else:
-        with ThreadPoolExecutor(max_workers=s.threads, thread_name_prefix="thickbake") as pool:
+        pool = ThreadPoolExecutor(max_workers=s.threads, thread_name_prefix="thickbake")
+        try:
             for future in [pool.submit(run, i) for i in range(len(tiles))]:
                 future.result()
+        except BaseException:
+            # Ctrl-C or a failing tile: drop the tiles not started yet instead of finishing them all
+            pool.shutdown(wait=True, cancel_futures=True)
+            raise
+        pool.shutdown(wait=True)
     trace_seconds = time.perf_counter() - start - setup_seconds
 
     covered = ctx.claims > 0

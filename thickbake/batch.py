@@ -7,8 +7,9 @@ names another) and bakes the assets that are not up to date.
 
 Output layout
 -------------
-``SRC/<folders>/<stem>.<ext>`` becomes ``OUT/<folders>/<stem>.thickness.png`` (``.tif`` with
-``format = "tif"``) and its sidecar ``OUT/<folders>/<stem>.thickness.json``.  The batch also writes
+``SRC/<folders>/<stem>.<ext>`` becomes ``OUT/<folders>/<stem>.<measure>.png`` (``.tif`` with
+``format = "tif"``; ``<measure>`` is thickness, transmittance or occlusion, so the name says what the map
+holds) and its sidecar ``OUT/<folders>/<stem>.<measure>.json``.  The batch also writes
 ``OUT/report.json`` and ``OUT/report.html`` (:mod:`thickbake.report`) and keeps an empty lock file,
 ``OUT/.thickbake-batch.lock``, so that two batches cannot write into one folder at once.  Two sources
 that would get the same map name (``leaf.obj`` beside ``leaf.glb``) both fail with a message.
@@ -99,7 +100,7 @@ from .settings import BakeSettings
 #: Mesh files a batch picks up (matched case-insensitively).
 BATCH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply")
 #: A source ``<stem>.<ext>`` is baked into ``<stem>`` + this tag + the map suffix.
-MAP_TAG = ".thickness"
+MAP_TAG = ".thickness"  # the tag of the default measure; other measures use their own name
 LOCK_NAME = ".thickbake-batch.lock"
 #: Temporary files of :func:`thickbake.output.atomic_write_bytes` (``.<name>.<random>.tmp``) for the
 #: files a batch writes; only these are removed at start-up.
@@ -202,10 +203,10 @@ def find_meshes(src: Path, out: Path | None = None) -> list[str]:
     return sorted(found)
 
 
-def map_name(rel: str, fmt: str) -> str:
+def map_name(rel: str, fmt: str, measure: str = "thickness") -> str:
     """Map path relative to OUT for a source path relative to SRC: ``a/b/leaf.obj`` → ``a/b/leaf.thickness.png``."""
     path = PurePosixPath(rel)
-    return path.with_name(path.stem + MAP_TAG + FORMATS[fmt]).as_posix()
+    return path.with_name(f"{path.stem}.{measure}{FORMATS[fmt]}").as_posix()
 
 
 def input_digests(path: Path) -> tuple[str, str]:
@@ -259,7 +260,8 @@ def plan_batch(src, out, config=None, force: bool = False) -> BatchPlan:
     for rel in rels:
         options = rules.options_for(rel)
         settings = BakeSettings.from_mapping(options.settings)
-        jobs.append(AssetJob(rel=rel, source=src_abs / rel, map_rel=map_name(rel, options.format), options=options,
+        jobs.append(AssetJob(rel=rel, source=src_abs / rel, map_rel=map_name(rel, options.format, settings.measure),
+                             options=options,
                              requested_hash=settings.content_hash(), cost=_bake_cost(settings)))
     plan = BatchPlan(src=src_abs, out=out.resolve(), rules=rules, jobs=jobs, unused_rules=rules.unused_rules(rels))
     _mark_name_clashes(plan.jobs)
