@@ -215,8 +215,9 @@ def render_html(report: dict, thumbnails: dict[str, bytes]) -> str:
         f"<b>{totals['skipped']}</b> skipped (up to date), "
         f"<b>{totals['failed']}</b> failed"
         + (f", <b>{totals['not_started']}</b> not started (interrupted)" if totals.get("not_started") else "")
-        + f" · {report['jobs']} job{'s' if report['jobs'] != 1 else ''} × {_threads_text(report['threads_per_bake'])}"
-        f" · {report['seconds']:.1f} s · {_rays_text(totals.get('rays_traced', 0))} traced"
+        + (f" · {report['jobs']} job{'s' if report['jobs'] != 1 else ''} × {_threads_text(report['threads_per_bake'])}"
+           if report["jobs"] else " · nothing to bake")
+        + f" · {report['seconds']:.1f} s · {_rays_text(totals.get('rays_traced', 0))} traced"
         + (f" · cluster {esc(report['cluster'])}" if report.get("cluster") else "")
         + f" · thickbake {esc(report['thickbake_version'])} · {esc(report['finished'])}</p>",
         '<p class="totals">Thumbnails are scaled per map (black 0, white its brightest texels); '
@@ -257,7 +258,7 @@ def _card(row: dict, thumbnail: bytes | None) -> str:
     if row.get("rays_per_second"):
         figures.append(("rays/s", f"{row['rays_per_second'] / 1e6:.2f} M"))
     if row.get("settings_hash"):
-        figures.append(("settings", row["settings_hash"][:12]))
+        figures.append(("settings", row["settings_hash"][:8]))
     dl = "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in figures)
     error = f'<div class="error">{esc(row["error"])}</div>' if row.get("error") else ""
     note = f'<div class="error">{esc(row["reason"])}</div>' if status == "not started" and row.get("reason") else ""
