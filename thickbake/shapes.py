@@ -68,36 +68,14 @@ from .surfaces import (
 )
 from .surfaces import _cross2  # noqa: F401  (unused here; tests/test_shapes.py calls shapes._cross2)
 
+from . import surfaces as _surfaces  # noqa: E402
+
+#: The shapes and their closed forms, plus the builders of :mod:`thickbake.surfaces` re-exported.
 __all__ = [
-    "Shape",
-    "Surface",
-    "ProfilePiece",
-    "UV_MARGIN",
-    "line_piece",
-    "arc_piece",
-    "revolve",
-    "sphere_surface",
-    "polycube_surface",
-    "join_surfaces",
-    "pack_islands",
-    "assemble_mesh",
-    "uv_islands",
-    "sphere",
-    "torus",
-    "box",
-    "capped_cylinder",
-    "hollow_shell",
-    "l_block",
-    "shell_and_ball",
-    "analytic_set",
-    "write_shape_set",
-    "shape_record",
-    "sphere_cone_mean_chord",
-    "sphere_cone_chord_second_moment",
-    "sphere_cone_mean_transmittance",
-    "obj_bytes",
-    "glb_bytes",
-    "atomic_write_bytes",
+    "Shape", "sphere", "torus", "box", "capped_cylinder", "hollow_shell", "l_block", "shell_and_ball",
+    "analytic_set", "write_shape_set", "shape_record", "sphere_cone_mean_chord",
+    "sphere_cone_chord_second_moment", "sphere_cone_mean_transmittance", "atomic_write_bytes",
+    *_surfaces.__all__,
 ]
 
 _CAUCHY_SOURCE = (
@@ -909,11 +887,8 @@ def sphere_cone_mean_transmittance(radius, cone_half_angle_rad, lobe, sigma):
 
     Parameters
     ----------
-    radius : float or array_like
-        Sphere radius R, scene units.
-    cone_half_angle_rad : float or array_like
-        Cone half-angle alpha in [0, pi/2].
-    lobe : {"cosine", "uniform"}
+    radius, cone_half_angle_rad, lobe
+        As for :func:`sphere_cone_mean_chord`.
     sigma : float or array_like
         Extinction coefficient >= 0, per scene unit.
 
