@@ -149,7 +149,7 @@ def bench_noise(size: int, rays: int) -> dict:
     out = {}
     for sequence in ("sobol", "random"):
         result = thickbake.bake(sphere.mesh, size=size, rays=rays, sequence=sequence)
-        err = result.values[result.covered] - 4.0 / 3.0   # closed form 4R/3 (cosine lobe, REFERENCES.md)
+        err = result.values[result.covered] - 4.0 / 3.0   # closed form 4R/3 (cosine lobe: chord 2R cosθ averaged)
         out[f"rms_{sequence}"] = float(np.sqrt(np.mean(err ** 2)))
     out["ratio_sobol_over_random"] = out["rms_sobol"] / out["rms_random"]
     return out

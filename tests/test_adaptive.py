@@ -25,7 +25,7 @@ def sphere():
 
 def test_adaptive_meets_target_on_sphere(sphere):
     # sphere R = 1, cosine lobe: chord 2R cosθ has mean 4R/3 and per-ray σ = R·√(2 − 16/9) = 0.471
-    # (REFERENCES.md, chord-length density ℓ/(2R²)).  A standard error of E needs n ≥ (σ/E)² rays
+    # (chord ℓ = 2R cosθ has density ℓ/(2R²) on [0, 2R] under the cosine lobe, so E[ℓ²] = 2R²).  A standard error of E needs n ≥ (σ/E)² rays
     # by the independent-sampling formula the stopping rule uses; batches double from 16, so with
     # E = 0.05 (n ≥ 89) every texel stops at 128 of the 256-ray cap.
     target, cap = 0.05, 256

@@ -9,6 +9,8 @@ Tolerance recipe (stated once, used throughout):
 * Facet: texel points lie on flat facets up to ``shape.facet_error`` (δ) inside the ideal surface, and
   the exit point too, so a chord can be short by up to 2δ.
 * Quantisation: a 16-bit code holds reach/65535 per step; rounding costs at most half a step.
+* float32: positions and distances are traced in float32 (relative rounding 6e-8); 1e-5 scene units
+  covers a few roundings on these unit-sized shapes.
 * Bias: origins start ``bias`` inside; the chord is corrected to first order (t + bias·cosθ), and the
   second-order remainder is below bias·(1 − cosθ) ≤ bias.
 """
@@ -44,7 +46,7 @@ def decoded_png(path):
 
 
 def test_sphere_along_normal_is_diameter(sphere, tmp_path):
-    # sphere chord along the inward normal = 2R (elementary geometry; REFERENCES.md "Chord geometry")
+    # sphere chord along the inward normal = 2R (elementary geometry: the normal through a sphere point passes through its centre)
     result = thickbake.bake(sphere.mesh, size=128, cone=0)
     out = tmp_path / "s.png"
     result.write(out)
@@ -120,7 +122,7 @@ def test_cauchy_fails_under_uniform_lobe():
 
 
 def sphere_mean_transmittance(tau: float) -> float:
-    """Cosine-weighted hemisphere mean of exp(−τ cosθ) (REFERENCES.md): 2[1 − (1+τ)e^(−τ)]/τ²."""
+    """Cosine-weighted hemisphere mean of exp(−τ cosθ) : 2[1 − (1+τ)e^(−τ)]/τ², from ∫₀¹ e^(−τμ)·2μ dμ."""
     return 2 * (1 - (1 + tau) * math.exp(-tau)) / tau ** 2
 
 
@@ -129,7 +131,7 @@ def test_transmittance_closed_form_matches_integration():
     for tau in (0.5, 3.4, 7.0):
         numeric, _ = integrate.quad(lambda mu: math.exp(-tau * mu) * 2 * mu, 0, 1)
         assert sphere_mean_transmittance(tau) == pytest.approx(numeric, rel=1e-10)
-    # REFERENCES.md computed check value, R = 1.7, σ = 1 (τ = 3.4): 0.147605123214
+    # computed check value (numerical quadrature, recomputed above), R = 1.7, σ = 1 (τ = 3.4): 0.147605123214
     assert sphere_mean_transmittance(3.4) == pytest.approx(0.147605123214, abs=1e-11)
 
 
@@ -153,11 +155,14 @@ def test_occlusion_default_reach_is_quarter_diagonal(sphere):
     # directions with 2R cosθ ≤ reach: P = P(cos²θ ≤ (reach/2R)²) = (reach/2R)² under the cosine lobe
     result = thickbake.bake(sphere.mesh, size=64, rays=64, measure="occlusion")
     reach = result.settings.reach
-    assert reach == pytest.approx(0.25 * math.sqrt(3) * 2, rel=0.01)
+    # the sphere mesh's bounding box is within the facet error of the ideal one's
+    assert reach == pytest.approx(0.25 * math.sqrt(3) * 2, abs=sphere.facet_error)
     expected = (reach / 2) ** 2
     values = result.values[result.covered]
     sigma = math.sqrt(expected * (1 - expected))
-    assert abs(values.mean() - expected) < 4 * sigma / math.sqrt(64 * values.size) + 0.01
+    # facet: chords short by up to 2δ + bias move P = (r/2R)² by at most (r/2R²)·(2δ + bias)
+    facet = reach / 2 * (2 * sphere.facet_error + result.settings.bias)
+    assert abs(values.mean() - expected) < 4 * sigma / math.sqrt(64 * values.size) + facet
 
 
 def test_png_round_trip_and_padding(sphere, tmp_path):
@@ -188,7 +193,8 @@ def test_invert_and_8_bit(sphere, tmp_path):
     result.write(out)
     values, side = decoded_png(out)
     assert read_image(out).dtype == np.uint8 and side["inverted"]
-    assert np.abs(values[result.covered] - 2.0).max() <= 0.5 * side["reach"] / 255 + 2 * sphere.facet_error + 1e-3
+    assert np.abs(values[result.covered] - 2.0).max() <= (0.5 * side["reach"] / 255 + 2 * sphere.facet_error
+                                                          + result.settings.bias + 1e-5)
 
 
 def test_float_tiff_holds_raw_measure(sphere, tmp_path):
@@ -235,7 +241,7 @@ def test_supersampling_covers_same_texels(sphere):
     b = thickbake.bake(sphere.mesh, size=64, cone=0, supersample=2)
     assert np.array_equal(a.covered, b.covered)
     assert b.info["surface_samples"] > 3 * a.info["surface_samples"]
-    assert np.abs(b.values[b.covered] - 2).max() < 2 * sphere.facet_error + 1e-3
+    assert np.abs(b.values[b.covered] - 2).max() < 2 * sphere.facet_error + b.settings.bias + 1e-5
 
 
 def test_stacked_uv_islands_reported_as_overlap():
@@ -257,7 +263,7 @@ def test_stacked_uv_islands_reported_as_overlap():
     # border texels get one clamped sample, not a claim per island, so they are not counted
     assert result.info["overlap"] > 0.85
     # every texel averages six faces whose chord along the normal is 1 (unit cube extent)
-    assert np.abs(result.values[result.covered] - 1.0).max() < 1e-3
+    assert np.abs(result.values[result.covered] - 1.0).max() < result.settings.bias + 1e-5  # planar faces: no facet error
 
 
 def test_inside_out_mesh_is_fixed_and_reported(sphere):
@@ -269,7 +275,7 @@ def test_inside_out_mesh_is_fixed_and_reported(sphere):
     result = thickbake.bake(flipped, size=64, cone=0)
     assert result.info["mesh"]["orientation_flipped"]
     assert any("inside-out" in w for w in result.info["mesh"]["warnings"])
-    assert np.abs(result.values[result.covered] - 2.0).max() < 2 * sphere.facet_error + 1e-3
+    assert np.abs(result.values[result.covered] - 2.0).max() < 2 * sphere.facet_error + result.settings.bias + 1e-5
 
 
 def test_scene_node_transforms_apply(tmp_path):
@@ -284,7 +290,8 @@ def test_scene_node_transforms_apply(tmp_path):
         scene.export(path)
         result = thickbake.bake(str(path), size=64, cone=0)
         assert not result.info["mesh"]["orientation_flipped"]
-        assert np.abs(result.values[result.covered] - 4.0).max() < 4 * sphere.facet_error + 1e-3
+        # scaled by 2, the facet error doubles: chords short by up to 2·(2δ)
+        assert np.abs(result.values[result.covered] - 4.0).max() < 4 * sphere.facet_error + result.settings.bias + 1e-5
 
 
 def test_open_mesh_misses_count_as_reach(sphere):

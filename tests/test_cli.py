@@ -117,3 +117,23 @@ def test_batch_dry_run_on_bundled_samples(tmp_path):
     assert "garden/leaf.obj -> garden/leaf.transmittance.png: bake" in proc.stdout
     assert "candle.glb -> candle.thickness.png: bake" in proc.stdout
     assert not out.exists()
+
+
+def test_output_targets_checked_before_baking(box_obj, tmp_path):
+    # every file a bake would write is checked first: no traceback, exit 2, nothing left behind
+    (tmp_path / "a.json").mkdir()                     # the sidecar's name is taken by a folder
+    (tmp_path / "e.tif").mkdir()                      # so is the error map's
+    (tmp_path / "afile").write_text("")               # a file where a folder should be
+    cases = [(["-o", tmp_path / "a.png"], "sidecar"),
+             (["-o", tmp_path / "b.png", "--error-out", tmp_path / "e.tif"], "error map"),
+             (["-o", tmp_path / "afile" / "x.png"], "not a folder")]
+    for args, expected in cases:
+        proc = run("bake", box_obj, "--size", "16", "--rays", "4", *args)
+        assert proc.returncode == 2 and expected in proc.stderr and "Traceback" not in proc.stderr
+        assert len(proc.stderr.strip().splitlines()) == 1
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.json", "afile", "e.tif"]
+    # a PNG and a TIFF of the same stem would share one sidecar: the second is refused
+    assert run("bake", box_obj, "--size", "16", "--rays", "4", "-o", tmp_path / "c.png").returncode == 0
+    proc = run("bake", box_obj, "--size", "16", "--rays", "4", "-o", tmp_path / "c.tif")
+    assert proc.returncode == 2 and "c.json already describes c.png" in proc.stderr
+    assert not (tmp_path / "c.tif").exists()

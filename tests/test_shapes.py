@@ -299,7 +299,7 @@ def test_torus_measures_closed_form(shapes):
 def test_cauchy_mean_chord(shape):
     assert shape.cauchy_mean_chord == pytest.approx(4 * shape.volume_mesh / shape.area_mesh, rel=1e-15)
     p = shape.params
-    # closed forms of 4V/S (REFERENCES.md): sphere 4R/3, torus 2r, box 2abc/(ab+bc+ca), cylinder 2rh/(r+h)
+    # closed forms of 4V/S (Cauchy 1832; Santaló 1976): sphere 4R/3, torus 2r, box 2abc/(ab+bc+ca), cylinder 2rh/(r+h)
     expect = {
         "sphere": lambda: 4 * p["radius"] / 3,
         "torus": lambda: 2 * p["minor_radius"],
@@ -491,7 +491,7 @@ def test_cone_mean_chord_against_dblquad_over_solid_angle(lobe):
 
 
 def test_references_check_values_recomputed():
-    # REFERENCES.md *computed* values, recomputed here with quad (12 printed decimals: +-5e-13)
+    # computed check values (numerical quadrature), recomputed here with quad (12 printed decimals: +-5e-13)
     R = 1.7
     for lobe, printed in (("cosine", 2.696257825099), ("uniform", 2.618513919976)):
         value, err = quad_mean(lambda mu: 2 * R * mu, R, 1.0, lobe)
@@ -520,7 +520,7 @@ def test_cone_limits():
         assert S.sphere_cone_chord_second_moment(R, 0.0, lobe) == pytest.approx(4 * R * R, rel=1e-15)
         assert S.sphere_cone_mean_transmittance(R, 0.0, lobe, sigma) == pytest.approx(math.exp(-tau), rel=1e-15)
         assert S.sphere_cone_mean_transmittance(R, 0.8, lobe, 0.0) == 1.0
-    # hemisphere: REFERENCES.md closed forms 4R/3, R, 2R^2, (1 - e^-tau)/tau, 2[1 - (1 + tau)e^-tau]/tau^2
+    # hemisphere: closed forms 4R/3, R, 2R^2, (1 - e^-tau)/tau, 2[1 - (1 + tau)e^-tau]/tau^2
     h = math.pi / 2
     assert S.sphere_cone_mean_chord(R, h, "cosine") == pytest.approx(4 * R / 3, rel=1e-15)
     assert S.sphere_cone_mean_chord(R, h, "uniform") == pytest.approx(R, rel=1e-15)

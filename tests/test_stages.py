@@ -143,7 +143,7 @@ def test_settings_validation_messages():
 
 
 def test_engines_agree():
-    # the two ray backends answer the same rays alike (STYLE.md: two backends, one interface)
+    # the two ray backends answer the same rays alike (two backends behind one interface must agree)
     import trimesh
 
     from thickbake.trace import EmbreeEngine, TrimeshEngine

@@ -129,13 +129,10 @@ class BakeResult:
 
     def write(self, map_path: str | os.PathLike, error_out: str | os.PathLike | None = None) -> Path:
         """Write the map (PNG codes or float32 TIFF of the measure) and its sidecar, atomically."""
-        path = check_output_path(map_path)
+        path = check_output_path(map_path, error_out)
         extra = {}
         if error_out is not None:
-            err_path = Path(error_out)
-            if err_path.suffix.lower() not in (".tif", ".tiff"):
-                raise ThickbakeError("the error map must be a float TIFF", path=err_path, fix="name it .tif")
-            extra[err_path] = self.stderr
+            extra[Path(error_out)] = self.stderr
         data, sidecar = self.encode(path.name)
         if error_out is not None:
             sidecar["error_map"] = Path(error_out).name
@@ -246,6 +243,8 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
     if n_covered == 0:
         raise ThickbakeError("no texel of the map is covered by the UV layout", path=asset.path,
                              fix="check the UVs lie inside the 0–1 square")
+    warnings = bake_warnings(totals["misses"] / max(totals["rays"], 1), totals["overlapped"] / n_covered,
+                             totals["origins_outside"])
     vals = ctx.values[covered].astype(np.float64)
     errs = ctx.stderr[covered].astype(np.float64)
     seconds = time.perf_counter() - start
@@ -276,9 +275,34 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
         "settings": s.to_dict(),
         "settings_hash": s.content_hash(),
         "timing": {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)},
+        "warnings": warnings,
     }
     return BakeResult(values=ctx.values, covered=covered, stderr=ctx.stderr, area=ctx.area, rays=ctx.rays,
                       settings=s, info=info)
+
+
+#: Above these shares a bake says something is off (judgement calls, no published source): most rays
+#: leaving the mesh means it has no inside (a single-sided card or an open sheet); a tenth of the
+#: texels claimed twice means stacked islands or several UV sets sharing one map.
+ESCAPE_WARNING_SHARE = 0.5
+OVERLAP_WARNING_SHARE = 0.1
+
+
+def bake_warnings(miss_fraction: float, overlap: float, origins_outside: int) -> list[str]:
+    """Plain-words warnings about a finished bake (empty when nothing looks wrong)."""
+    out = []
+    if miss_fraction > ESCAPE_WARNING_SHARE:
+        out.append(f"{miss_fraction:.0%} of the rays left the mesh without hitting it, so most texels read the full "
+                   "reach: the mesh has no inside (a single-sided card or an open sheet?) - give it thickness or "
+                   "close it, or bake such cards with a short --reach")
+    if overlap > OVERLAP_WARNING_SHARE:
+        out.append(f"{overlap:.0%} of the covered texels are claimed by more than one surface point (stacked or "
+                   "mirrored UV islands, or several objects each with their own 0-1 UVs); those texels average them "
+                   "- bake such objects separately if they need their own maps")
+    if origins_outside:
+        out.append(f"{origins_outside} samples could not start inside the solid even with a tiny offset "
+                   "(intersecting or inside-out parts?) - run 'thickbake verify' on the mesh")
+    return out
 
 
 def _tile_side(chunk_rays: int, rays: int, supersample: int, width: int, height: int) -> int:

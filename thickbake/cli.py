@@ -52,11 +52,16 @@ BAKE_OPTION_NAMES = ("size", "rays", "cone", "lobe", "measure", "reach", "attenu
                      "chunk_rays", "order")
 
 
-def add_bake_options(parser: argparse.ArgumentParser) -> None:
-    """Options that become :class:`BakeSettings` fields (defaults stay None = "not given")."""
+def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024", rays_default: str = "64") -> None:
+    """Options that become :class:`BakeSettings` fields (defaults stay None = "not given").
+
+    ``size_default``/``rays_default`` are only the help text: commands such as verify that bake with
+    their own defaults say so.
+    """
     g = parser.add_argument_group("bake options (lengths in scene units)")
-    g.add_argument("--size", type=_size, metavar="N|WxH", help="map size in texels (default 1024; e.g. 2048x1024)")
-    g.add_argument("--rays", type=int, metavar="N", help="rays per surface sample (default 64; the cap with --target-error)")
+    g.add_argument("--size", type=_size, metavar="N|WxH", help=f"map size in texels (default {size_default}; e.g. 2048x1024)")
+    g.add_argument("--rays", type=int, metavar="N",
+                   help=f"rays per surface sample (default {rays_default}; the cap with --target-error)")
     g.add_argument("--cone", type=float, metavar="DEG",
                    help="half-angle of the cone around the inward normal: 0 = straight in (one ray), 90 = hemisphere (default 90)")
     g.add_argument("--lobe", choices=("cosine", "uniform"), help="direction density in the cone (default cosine)")
@@ -164,9 +169,7 @@ def cmd_bake(args) -> int:
     from .output import check_output_path
 
     settings = settings_from_args(args)
-    check_output_path(args.output)
-    if args.error_out is not None and os.path.splitext(args.error_out)[1].lower() not in (".tif", ".tiff"):
-        raise ThickbakeError("the error map must be a float TIFF", path=args.error_out, fix="name it .tif")
+    check_output_path(args.output, args.error_out)
     asset = load_asset(args.mesh)
     print_warnings(asset.report.warnings, args.mesh)
     bar = ProgressBar(f"baking {os.path.basename(args.mesh)}", enabled=None if not args.quiet else False)
@@ -175,6 +178,7 @@ def cmd_bake(args) -> int:
     finally:
         bar.close()
     result.write(args.output, error_out=args.error_out)
+    print_warnings(result.info["warnings"], args.mesh)
     if not args.quiet:
         print(summary_line(result, args.mesh, args.output))
     return EXIT_OK
@@ -239,7 +243,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("mesh", metavar="MESH", nargs="?", help="your asset (omit to verify against the analytic shapes)")
     p.add_argument("--json", metavar="FILE", help="also write the table as JSON")
     p.add_argument("--shapes", metavar="NAMES", help="comma-separated subset of the analytic shapes")
-    add_bake_options(p)
+    add_bake_options(p, size_default="256", rays_default="64")
     p.set_defaults(func=cmd_verify)
 
     p = sub.add_parser("compare", help="compare two maps in scene units through their sidecars",
@@ -284,6 +288,10 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("thickbake: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -267,7 +267,8 @@ def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
     trace_faces = inverse.reshape(-1, 3).astype(np.int64)
 
     merged = trimesh.Trimesh(trace_vertices, trace_faces, process=False)
-    volume = float(merged.volume)
+    with np.errstate(divide="ignore", invalid="ignore"):  # trimesh divides by zero on open sheets
+        volume = float(merged.volume)
     flipped = False
     warnings: list[str] = []
     if volume < 0:

@@ -77,14 +77,49 @@ def sidecar_path(map_path: str | os.PathLike) -> Path:
     return Path(map_path).with_suffix(".json")
 
 
-def check_output_path(path: str | os.PathLike) -> Path:
-    """Validate an output map path before any work is done."""
+def _check_target(path: Path, what: str) -> None:
+    """A file we are about to write must not be a folder, and its folder must be creatable."""
+    if path.is_dir():
+        raise ThickbakeError(f"the {what} would overwrite a folder", path=path, fix="choose another output name")
+    for parent in path.parents:
+        if parent.exists():
+            if not parent.is_dir():
+                raise ThickbakeError(f"cannot create the {what}: {parent} is a file, not a folder", path=path,
+                                     fix="choose an output path inside a folder")
+            if not os.access(parent, os.W_OK):
+                raise ThickbakeError(f"no permission to write into {parent}", path=path,
+                                     fix="choose a folder you can write to")
+            break
+
+
+def check_output_path(path: str | os.PathLike, error_out: str | os.PathLike | None = None) -> Path:
+    """Validate an output map path (and its sidecar and optional error map) before any work is done.
+
+    Refuses a suffix other than PNG/TIFF, targets that are folders or lie under a file, and a sidecar
+    that already describes a *different* existing map (``OUT.png`` and ``OUT.tif`` share ``OUT.json``).
+    """
     path = Path(path)
     if path.suffix.lower() not in IMAGE_SUFFIXES:
         raise ThickbakeError(f"cannot write a map with suffix {path.suffix or '(none)'!r}", path=path,
                              fix="name the output .png (16/8-bit) or .tif (float32)")
-    if path.exists() and path.is_dir():
-        raise ThickbakeError("the output is a folder", path=path, fix="give a file name such as out.png")
+    _check_target(path, "map")
+    side = sidecar_path(path)
+    _check_target(side, "sidecar")
+    if side.is_file():
+        try:
+            other = json.loads(side.read_text()).get("map")
+        except (OSError, ValueError, AttributeError):
+            other = None
+        if isinstance(other, str) and other != path.name and (path.parent / other).exists():
+            raise ThickbakeError(f"its sidecar {side.name} already describes {other}", path=path,
+                                 fix=f"give this map another name than {other} (maps sharing a stem share a sidecar)")
+    if error_out is not None:
+        err = Path(error_out)
+        if err.suffix.lower() not in (".tif", ".tiff"):
+            raise ThickbakeError("the error map must be a float TIFF", path=err, fix="name it .tif")
+        if err.resolve() == path.resolve():
+            raise ThickbakeError("the error map and the map are the same file", path=err, fix="give it its own name")
+        _check_target(err, "error map")
     return path
 
 
@@ -103,8 +138,21 @@ def write_map(path: str | os.PathLike, data: bytes, sidecar: dict,
     for extra_path, array in (extra or {}).items():
         blobs.append((Path(extra_path), image_bytes(array.astype(np.float32), ".tif")))
     blobs.append((sidecar_path(path), json_bytes(sidecar)))
-    for target, blob in blobs:
-        atomic_write_bytes(target, blob)
+    written = []
+    try:
+        for target, blob in blobs:
+            existed = target.exists()
+            atomic_write_bytes(target, blob)
+            if not existed:
+                written.append(target)
+    except OSError as exc:
+        for target in written:  # no half set of outputs: remove what this call created
+            try:
+                target.unlink()
+            except OSError:
+                pass
+        raise ThickbakeError(f"cannot write the output ({exc.strerror or exc})", path=exc.filename or target,
+                             fix="check the folder exists, is writable and has free space") from None
 
 
 def read_sidecar(map_path: str | os.PathLike) -> dict:

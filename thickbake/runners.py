@@ -102,7 +102,7 @@ def _bake_asset(task: dict) -> dict:
     data, sidecar = result.encode(task["map_name"])
     sidecar["batch"] = dict(task["batch"], map_sha256=hashlib.sha256(data).hexdigest())
     return {"map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
-            "threads": settings.threads, "warnings": list(asset.report.warnings)}
+            "threads": settings.threads, "warnings": list(asset.report.warnings) + list(result.info["warnings"])}
 
 
 def _threads_here() -> int:

@@ -20,7 +20,7 @@ W = x₀ − c, τ = 2R / L (our derivation, checked against scipy.integrate in 
 * occlusion, cosine   (x₀² − c²) / (1 − c²);  uniform  (x₀ − c) / (1 − c)
 
 with g₁(y) = (1 − e^(−y))/y and g₂(y) = (1 − e^(−y)(1 + y))/y², both evaluated without
-cancellation.  α = 0 gives g(2R).  At α = 90° and ρ ≥ 2R these are REFERENCES.md's hemisphere means
+cancellation.  α = 0 gives g(2R).  At α = 90° and ρ ≥ 2R these are the hemisphere means
 4R/3, R and the Beer–Lambert sphere averages.
 
 Per-ray error of a faceted sphere bake
@@ -63,7 +63,7 @@ FAMILY_ALPHA = 1e-3
 CHEBYSHEV_K95 = math.sqrt(20.0)
 #: Coverage factor of the Cauchy row's statistical term (see module docstring).
 CAUCHY_K = 4.0
-#: REFERENCES.md's budget for the Cauchy consistency check: 1% of 4V/S.
+#: Budget for the Cauchy consistency check: 1% of 4V/S (the project's acceptance criterion, not a published figure).
 CAUCHY_BUDGET = 0.01
 #: float32 round-off of ray origins, directions and hit distances: a handful of roundings of at most
 #: half an ulp each; 8 ulps (2⁻²⁴ relative each) of the scene's bounding-box diagonal bounds them.

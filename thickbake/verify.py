@@ -48,7 +48,7 @@ Tolerances (all derived, see :mod:`thickbake.tolerance`):
   weights against the exact texel coverage, by clipping every UV triangle against every texel:
   ½‖p − q‖₁ times the value range or Σ|aᵢ − wᵢ||vᵢ − M_w|/Σa, whichever is smaller, plus the
   sample-to-patch-centroid distance times an average Lipschitz constant 3) + bias 8b/3 + float32
-  + ½ step, capped at REFERENCES.md's budget of 1%.
+  + ½ step, capped at the 1% budget the baker's acceptance criterion sets for this check.
 
 Exit status 0 when every row passes or is skipped, 1 otherwise.  ``--json FILE`` writes the table.
 
