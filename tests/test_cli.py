@@ -137,3 +137,14 @@ def test_output_targets_checked_before_baking(box_obj, tmp_path):
     proc = run("bake", box_obj, "--size", "16", "--rays", "4", "-o", tmp_path / "c.tif")
     assert proc.returncode == 2 and "c.json already describes c.png" in proc.stderr
     assert not (tmp_path / "c.tif").exists()
+
+
+@pytest.mark.parametrize("sample", ["candle.glb", "garden/leaf.obj", "garden/pebble.obj"])
+def test_bundled_samples_are_fit_for_baking(sample):
+    # the demo assets are closed and outward-wound; the leaf's blade-thin rim must not read as a hole
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parent.parent / "samples" / sample
+    proc = run("verify", path, "--size", "128", "--rays", "32")
+    assert proc.returncode == 0, proc.stdout[-2000:]
+    assert proc.stdout.strip().splitlines()[-2] == "fit for baking"

@@ -204,8 +204,9 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
     """Cast cosine-distributed inward rays from random surface points and classify their first hit.
 
     Points are uniform by area (face chosen by area, uniform barycentrics), directions cosine-weighted
-    about the inward *geometric* normal, origins offset by ``bias`` (default 10⁻⁴ × diagonal, the
-    bake's default) along it.
+    about the inward *geometric* normal, origins placed as the bake places them: ``bias`` (default
+    10⁻⁴ × diagonal, the bake's default) inside, kept off triangle edges, and closer where the solid
+    is thinner than that (:func:`thickbake.trace.inward_origins`).
 
     Parameters
     ----------
@@ -217,6 +218,8 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
         Scene units.
     """
     from .directions import ray_directions
+    from .texels import EDGE_MARGIN_BIASES, keep_off_edges
+    from .trace import inward_origins
 
     rng = np.random.default_rng(seed)
     tri = asset.trace_vertices[asset.trace_faces]
@@ -227,10 +230,13 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
     r = rng.random((rays, 2))
     flipped = r.sum(axis=1) > 1
     r[flipped] = 1 - r[flipped]
-    points = tri[face, 0] + r[:, :1] * (tri[face, 1] - tri[face, 0]) + r[:, 1:] * (tri[face, 2] - tri[face, 0])
-    inward = -normal[face]
     b = asset.diagonal * 1e-4 if bias is None else bias
-    origins = (points + b * inward).astype(np.float32)
+    # the bake's own origin placement: off triangle edges, and closer to the surface where the solid
+    # is thinner than the bias, so a thin rim does not read as a hole
+    bary = keep_off_edges(tri, face, np.column_stack([1 - r.sum(axis=1), r]), EDGE_MARGIN_BIASES * b)
+    points = np.einsum("nk,nkj->nj", bary, tri[face])
+    inward = -normal[face]
+    origins, _, _ = inward_origins(engine, points, normal[face], normal, b)
     u = rng.random((2, rays, 1)).astype(np.float32)
     directions, _ = ray_directions(u[0], u[1], inward.astype(np.float32), 90.0, "cosine")
     _, hit, hit_face = engine.first_hit_faces(np.ascontiguousarray(origins), directions, 2.0 * asset.diagonal)
