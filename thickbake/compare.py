@@ -126,6 +126,9 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
     path = Path(path)
     if not path.exists():
         raise ThickbakeError("no such file", path=path, fix="check the path")
+    if path.is_dir() or path.suffix.lower() not in (".png", ".tif", ".tiff"):
+        raise ThickbakeError("is not a map (a .png or .tif written by 'thickbake bake')", path=path,
+                             fix="compare two maps, e.g. thickbake compare old.png new.png")
     side = read_sidecar(path)
     encoding = side.get("encoding")
     measure = side.get("measure")
