@@ -26,7 +26,7 @@ from typing import Callable
 
 from .errors import ThickbakeError
 from .rules import FORMATS
-from .settings import BakeSettings
+from .settings import BakeSettings, usable_cores
 
 #: Modules the fork server imports once, so that pool processes start without importing them.
 _POOL_PRELOAD = ["thickbake.runners", "thickbake.batch", "thickbake.baker", "thickbake.mesh", "thickbake.trace",
@@ -38,10 +38,7 @@ CLUSTER_CONNECT_SECONDS = 10
 
 def available_cores() -> int:
     """Cores this process may use (the affinity mask where the platform has one)."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except (AttributeError, OSError):
-        return max(1, os.cpu_count() or 1)
+    return usable_cores()
 
 
 def bake_asset(task: dict) -> dict:
