@@ -278,7 +278,7 @@ def test_cylinder_measures_bracketed(shapes):
 def test_torus_measures_closed_form(shapes):
     """Polyhedral torus of revolution: exact volume, bracketed area.
 
-    Wedge between meridians phi_i, phi_i + dphi: the chordal extrusion of the cross-section polygon Q
+    Wedge between meridians phi_i, phi_i + dphi: the cross-section polygon Q swept along the straight chord between the two meridians
     has volume sin(dphi) * int_Q rho dA; summed, V = n_u sin(2pi/n_u) * R * area(Q) with
     area(Q) = n_v/2 r^2 sin(2pi/n_v) (regular polygon centred at rho = R).  So
     V_mesh = V_exact * sinc(2pi/n_u) * sinc(2pi/n_v).  Each planar trapezoid has area

@@ -21,7 +21,7 @@ The meshes are built with :mod:`thickbake.surfaces`.  Its building blocks (also 
 working: :class:`ProfilePiece`, :func:`line_piece`, :func:`arc_piece`, :func:`revolve`,
 :func:`sphere_surface`, :func:`polycube_surface`, :class:`Surface`, :func:`join_surfaces`,
 :func:`pack_islands`, :func:`assemble_mesh`, :func:`uv_islands`, :func:`obj_bytes`, :func:`glb_bytes`,
-:data:`UV_MARGIN`; and :func:`atomic_write_bytes` from :mod:`thickbake.output`.
+:data:`ISLAND_GAP`; and :func:`atomic_write_bytes` from :mod:`thickbake.output`.
 
 References
 ----------
@@ -48,7 +48,7 @@ import trimesh
 
 from .output import atomic_write_bytes
 from .surfaces import (
-    UV_MARGIN,
+    ISLAND_GAP,
     ProfilePiece,
     Surface,
     _polycube_faces,

@@ -27,7 +27,7 @@ Conventions
   differ across hard edges.
 * Before packing, UVs are in world units (area-faithful up to each layout's stated distortion).  After
   :func:`assemble_mesh` they lie in [0, 1]^2 in the OBJ convention (v up, origin lower-left), islands
-  :data:`UV_MARGIN` apart and half that from the border.  trimesh flips v when it writes or reads glTF,
+  :data:`ISLAND_GAP` apart and half that from the border.  trimesh flips v when it writes or reads glTF,
   so GLB files round-trip to the same numbers.
 * ``facet_error`` is an upper bound on the Hausdorff distance between the faceted surface and the
   ideal one, in scene units.  Polycube faces are the ideal surface, so theirs is 0.
@@ -63,7 +63,7 @@ import trimesh
 __all__ = [
     "Surface",
     "ProfilePiece",
-    "UV_MARGIN",
+    "ISLAND_GAP",
     "line_piece",
     "arc_piece",
     "revolve",
@@ -79,7 +79,7 @@ __all__ = [
 
 #: Gap between packed UV islands, as a fraction of the unit square (half of it at the border).  1/32 is
 #: 8 texels at 256 px and 32 at 1024 px, room for edge padding on both sides of a seam.
-UV_MARGIN = 1.0 / 32.0
+ISLAND_GAP = 1.0 / 32.0
 
 
 # --------------------------------------------------------------------------------------------------
@@ -530,9 +530,9 @@ def _refined_polycube(breaks, occupancy, max_edge):
 # --------------------------------------------------------------------------------------------------
 
 
-def _shelf_fits(widths, heights, order, scale, margin):
+def _shelf_fits(widths, heights, order, scale, gap):
     """Place islands on shelves at ``scale``; return lower-left offsets or None if they do not fit."""
-    border = margin / 2.0
+    border = gap / 2.0
     x, y, shelf = border, border, 0.0
     offsets = np.zeros((len(widths), 2))
     for k in order:
@@ -540,22 +540,22 @@ def _shelf_fits(widths, heights, order, scale, margin):
         if w > 1.0 - 2 * border:
             return None
         if x > border and x + w > 1.0 - border:
-            x, y, shelf = border, y + shelf + margin, 0.0
+            x, y, shelf = border, y + shelf + gap, 0.0
         offsets[k] = (x, y)
-        x += w + margin
+        x += w + gap
         shelf = max(shelf, h)
     if y + shelf > 1.0 - border:
         return None
     return offsets
 
 
-def _best_scale(widths, heights, order, margin):
+def _best_scale(widths, heights, order, gap):
     """Largest scale (bisection) at which the shelf placement in ``order`` fits, with its offsets."""
-    lo, hi = 0.0, (1.0 - margin) / float(max(widths.max(), heights.max()))
+    lo, hi = 0.0, (1.0 - gap) / float(max(widths.max(), heights.max()))
     best = None
     for _ in range(50):
         mid = 0.5 * (lo + hi)
-        placed = _shelf_fits(widths, heights, order, mid, margin)
+        placed = _shelf_fits(widths, heights, order, mid, gap)
         if placed is None:
             hi = mid
         else:
@@ -563,10 +563,10 @@ def _best_scale(widths, heights, order, margin):
     return lo, best
 
 
-def pack_islands(extents, margin: float = UV_MARGIN):
+def pack_islands(extents, gap: float = ISLAND_GAP):
     """Pack island bounding boxes into the unit square at one common scale (shelf packing).
 
-    Islands go left to right on shelves, ``margin`` apart and ``margin / 2`` from the border.  Each
+    Islands go left to right on shelves, ``gap`` apart and ``gap / 2`` from the border.  Each
     candidate -- every island landscape, every island portrait, and for up to 6 islands every mix of
     quarter turns -- is tried with three orderings (by height, width, area); the largest common scale
     (uniform texel density), found by bisection, wins.  Deterministic: ties keep the earlier candidate.
@@ -575,7 +575,7 @@ def pack_islands(extents, margin: float = UV_MARGIN):
     ----------
     extents : (k, 2) float64
         Width and height of each island in world units.
-    margin : float
+    gap : float
         Gap between islands, fraction of the square.
 
     Returns
@@ -599,7 +599,7 @@ def pack_islands(extents, margin: float = UV_MARGIN):
         w = np.where(turned, extents[:, 1], extents[:, 0])
         h = np.where(turned, extents[:, 0], extents[:, 1])
         for order in (np.lexsort((index, -h)), np.lexsort((index, -w)), np.lexsort((index, -w * h))):
-            scale, offsets = _best_scale(w, h, order, margin)
+            scale, offsets = _best_scale(w, h, order, gap)
             if offsets is not None and scale > best[0] * (1 + 1e-9):
                 best = (scale, offsets, turned.copy())
     assert best[1] is not None, "no packing found"
@@ -610,7 +610,7 @@ def _cross2(a, b):
     return a[..., 0] * b[..., 1] - a[..., 1] * b[..., 0]
 
 
-def assemble_mesh(surface: Surface, *, material=None, margin: float = UV_MARGIN) -> trimesh.Trimesh:
+def assemble_mesh(surface: Surface, *, material=None, gap: float = ISLAND_GAP) -> trimesh.Trimesh:
     """Pack a surface's UV islands and split vertices into an exported-asset-style mesh.
 
     Each island is mirrored if needed so its UV triangles wind like the outward faces, then packed
@@ -622,7 +622,7 @@ def assemble_mesh(surface: Surface, *, material=None, margin: float = UV_MARGIN)
     surface : Surface
     material : trimesh.visual.material.Material, optional
         Defaults to a plain grey PBR material without textures.
-    margin : float
+    gap : float
         UV gap between islands.
 
     Returns
@@ -642,7 +642,7 @@ def assemble_mesh(surface: Surface, *, material=None, margin: float = UV_MARGIN)
     hi = np.full((n_isl, 2), -np.inf)
     np.minimum.at(lo, corner_isl, flat)
     np.maximum.at(hi, corner_isl, flat)
-    scale, offsets, turn = pack_islands(hi - lo, margin)
+    scale, offsets, turn = pack_islands(hi - lo, gap)
     t = turn[corner_isl]
     flat[t] = np.column_stack((-flat[t, 1], flat[t, 0]))  # +90 deg keeps the winding
     lo = np.full((n_isl, 2), np.inf)
