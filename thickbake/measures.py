@@ -41,7 +41,8 @@ def ray_values(chord: np.ndarray, hit: np.ndarray, measure: str, reach: float,
     """
     if measure == "occlusion":
         return hit.astype(np.float64)
-    d = np.where(hit, np.minimum(chord, np.float32(reach)), np.float32(reach)).astype(np.float64)
+    reach = float(reach)  # a Python float keeps the chords' dtype (float32 from the engine)
+    d = np.where(hit, np.minimum(chord, reach), reach).astype(np.float64)
     if measure == "thickness":
         return d
     if measure == "transmittance":

@@ -50,6 +50,7 @@ class MeshReport:
     watertight: bool
     winding_consistent: bool
     boundary_edges: int
+    non_manifold_edges: int
     boundary_length: float
     volume: float
     area: float
@@ -219,8 +220,6 @@ def _part(geom, transform: np.ndarray, where: str):
 
 # ---------------------------------------------------------------------------- assembly
 def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
-    import trimesh
-
     where = path or name
     tri_list, uv_list, nrm_list, has_uv_list, has_nrm_list = [], [], [], [], []
     vertices_in_file = 0
@@ -266,9 +265,7 @@ def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
     trace_vertices = flat[first]
     trace_faces = inverse.reshape(-1, 3).astype(np.int64)
 
-    merged = trimesh.Trimesh(trace_vertices, trace_faces, process=False)
-    with np.errstate(divide="ignore", invalid="ignore"):  # trimesh divides by zero on open sheets
-        volume = float(merged.volume)
+    volume = signed_volume(trace_vertices, trace_faces)
     flipped = False
     warnings: list[str] = []
     if volume < 0:
@@ -277,16 +274,16 @@ def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
         triangles = triangles[:, ::-1].copy()
         triangle_uv = triangle_uv[:, ::-1].copy()
         triangle_normals = triangle_normals[:, ::-1].copy()
-        merged = trimesh.Trimesh(trace_vertices, trace_faces, process=False)
         volume = -volume
         warnings.append("the mesh was inside-out (negative volume); its winding was reversed for the bake")
 
     edges = np.sort(trace_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    _, edge_counts = np.unique(edges, axis=0, return_counts=True)
-    boundary = _boundary_edges(edges)
+    unique_edges, edge_counts = np.unique(edges, axis=0, return_counts=True)
+    boundary = unique_edges[edge_counts == 1]
+    non_manifold = int((edge_counts > 2).sum())
     boundary_length = float(np.linalg.norm(trace_vertices[boundary[:, 0]] - trace_vertices[boundary[:, 1]], axis=1).sum())
-    watertight = bool(len(boundary) == 0 and (edge_counts == 2).all())
-    winding_consistent = bool(merged.is_winding_consistent) if watertight else _winding_consistent(trace_faces)
+    watertight = bool(len(boundary) == 0 and non_manifold == 0)
+    winding_consistent = _winding_consistent(trace_faces)
     if not watertight:
         warnings.append(f"the mesh is not closed ({len(boundary)} open edges after merging seams); "
                         "rays escaping through holes count as the full reach — run 'thickbake verify' on it")
@@ -313,6 +310,7 @@ def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
         watertight=watertight,
         winding_consistent=winding_consistent,
         boundary_edges=int(len(boundary)),
+        non_manifold_edges=non_manifold,
         boundary_length=boundary_length,
         volume=volume,
         area=float(double_area.sum() / 2),
@@ -347,10 +345,14 @@ def _uv_outside_fraction(uv: np.ndarray, area: np.ndarray) -> float:
     return float(area[out].sum() / total) if total > 0 else 0.0
 
 
-def _boundary_edges(edges: np.ndarray) -> np.ndarray:
-    """(b, 2) vertex pairs of edges used by exactly one triangle; ``edges`` is (3f, 2) sorted pairs."""
-    uniq, counts = np.unique(edges, axis=0, return_counts=True)
-    return uniq[counts == 1]
+def signed_volume(vertices: np.ndarray, faces: np.ndarray) -> float:
+    """Signed volume enclosed by triangles, scene units³: Σ v0 · (v1 × v2) / 6 (divergence theorem).
+
+    Positive when the triangles wind counter-clockwise seen from outside; for an open mesh it is the
+    volume of the cone from the origin, which is all the orientation test needs.
+    """
+    tri = vertices[faces]
+    return float(np.einsum("ij,ij->", tri[:, 0], np.cross(tri[:, 1], tri[:, 2])) / 6.0)
 
 
 def _winding_consistent(faces: np.ndarray) -> bool:

@@ -72,10 +72,6 @@ class TexelSamples:
         return np.divide(total, count, out=np.zeros(size), where=count > 0)
 
 
-def _pixel_jacobian(asset, width: int, height: int):
-    return pixel_triangles(asset.triangles, asset.triangle_uv, asset.has_uv, width, height)
-
-
 def texel_samples(asset, width: int, height: int, supersample: int = 1, bias: float = 0.0) -> TexelSamples:
     """Re-draw the surface samples of a bake of ``asset`` at ``width`` × ``height``.
 
@@ -98,7 +94,7 @@ def texel_samples(asset, width: int, height: int, supersample: int = 1, bias: fl
     -------
     TexelSamples
     """
-    tri_px, valid, jacobian, _ = _pixel_jacobian(asset, width, height)
+    tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, asset.triangle_uv, asset.has_uv, width, height)
     index = np.flatnonzero(valid)
     samples, _ = rasterise_tile(tri_px[index], index, jacobian[index], 0, 0, max(width, height), width, height,
                                 supersample)
@@ -193,7 +189,7 @@ def exact_texel_coverage(asset, width: int, height: int) -> TexelCoverage:
     -------
     TexelCoverage
     """
-    tri_px, valid, jacobian, world_area = _pixel_jacobian(asset, width, height)
+    tri_px, valid, jacobian, world_area = pixel_triangles(asset.triangles, asset.triangle_uv, asset.has_uv, width, height)
     index = np.flatnonzero(valid)
     lo = np.floor(tri_px[index].min(axis=1)).astype(np.int64)
     hi = np.ceil(tri_px[index].max(axis=1)).astype(np.int64) - 1

@@ -853,12 +853,14 @@ def sphere_cone_chord_second_moment(radius, cone_half_angle_rad, lobe):
 
 def _g1(x):
     """(1 - exp(-x)) / x, 1 at x = 0."""
+    x = np.asarray(x, np.float64)
     safe = np.where(x == 0, 1.0, x)
     return np.where(x == 0, 1.0, -np.expm1(-safe) / safe)
 
 
 def _g2(x):
     """(1 - exp(-x)(1 + x)) / x^2, 1/2 at x = 0; Taylor series below 0.1 to avoid cancellation."""
+    x = np.asarray(x, np.float64)
     small = x < 0.1
     safe = np.where(small, 1.0, x)
     direct = (-np.expm1(-safe) - safe * np.exp(-safe)) / (safe * safe)

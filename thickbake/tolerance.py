@@ -57,6 +57,8 @@ import math
 
 import numpy as np
 
+from .shapes import _g1, _g2  # the same cancellation-free forms as the cone closed forms
+
 #: Family-wise false-alarm rate of the per-texel "every texel" criterion.
 FAMILY_ALPHA = 1e-3
 #: Chebyshev factor for "95% of texels": 1 / k² = 0.05.
@@ -80,8 +82,9 @@ def float32_term(diagonal: float) -> float:
 
 def half_code_step(measure: str, reach: float, bits: int) -> float:
     """Half an integer code step in measure units (round-to-nearest quantisation)."""
-    span = float(reach) if measure == "thickness" else 1.0
-    return 0.5 * span / ((1 << int(bits)) - 1)
+    from .encode import quantisation_step
+
+    return 0.5 * quantisation_step(measure, reach, int(bits))
 
 
 def bonferroni_k(texels: int, dof: int, alpha: float = FAMILY_ALPHA) -> float:
@@ -98,16 +101,11 @@ def bonferroni_k(texels: int, dof: int, alpha: float = FAMILY_ALPHA) -> float:
 
 # ---------------------------------------------------------------------------- measures
 def measure_value(chord, measure: str, reach: float, attenuation_distance: float | None):
-    """The bake's per-ray value g(ℓ) of a hit at distance ℓ (scene units), vectorised."""
+    """The bake's per-ray value g(ℓ) of a hit at distance ℓ (scene units): :func:`thickbake.measures.ray_values`."""
+    from .measures import ray_values
+
     chord = np.asarray(chord, np.float64)
-    clipped = np.minimum(chord, reach)
-    if measure == "thickness":
-        return clipped
-    if measure == "transmittance":
-        return np.exp(-clipped / attenuation_distance)
-    if measure == "occlusion":
-        return (chord < reach).astype(np.float64)
-    raise ValueError(f"unknown measure {measure!r}")
+    return ray_values(chord, chord < reach, measure, reach, attenuation_distance)
 
 
 def measure_modulus(chord, error, measure: str, reach: float, attenuation_distance: float | None):
@@ -130,23 +128,6 @@ def measure_modulus(chord, error, measure: str, reach: float, attenuation_distan
 
 
 # ---------------------------------------------------------------------------- sphere closed forms
-def _g1(y):
-    y = np.asarray(y, np.float64)
-    safe = np.where(y == 0, 1.0, y)
-    return np.where(y == 0, 1.0, -np.expm1(-safe) / safe)
-
-
-def _g2(y):
-    y = np.asarray(y, np.float64)
-    small = y < 0.1
-    safe = np.where(small, 1.0, y)
-    direct = (-np.expm1(-safe) - safe * np.exp(-safe)) / (safe * safe)
-    series = np.zeros_like(y)
-    for k in range(12, -1, -1):  # Σ (−1)^k (k + 1) / (k + 2)! y^k; 13 terms are exact to 1e-24 at y = 0.1
-        series = series * y + (-1) ** k * (k + 1) / math.factorial(k + 2)
-    return np.where(small, series, direct)
-
-
 def sphere_cone_expected(radius: float, cone_rad: float, lobe: str, measure: str, reach: float,
                          attenuation_distance: float | None = None) -> float:
     """Expected per-texel value of a bake of a sphere (closed form, reach clipping included).

@@ -537,9 +537,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     checks: list[Check] = []
 
     # closed surface
-    tri_edges = np.sort(asset.trace_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    _, edge_counts = np.unique(tri_edges, axis=0, return_counts=True)
-    non_manifold = int((edge_counts > 2).sum())
+    non_manifold = rep.non_manifold_edges
     if rep.boundary_edges == 0 and non_manifold == 0:
         checks.append(Check(name, "closed surface", PASS, measured=0.0, note="no open edges after welding seams"))
     else:
