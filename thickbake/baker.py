@@ -189,8 +189,6 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
         settings = settings.replace(**options)
     asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
     s = settings.resolve(asset.diagonal)
-    if s.measure == "transmittance" and not s.attenuation_distance:
-        raise ThickbakeError("transmittance needs an attenuation distance", fix="pass --attenuation-distance L")
     if engine is None:
         from .trace import make_engine
         engine = make_engine(asset.trace_vertices, asset.trace_faces)
@@ -373,8 +371,8 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray,
             active = active[more]
             if len(active) == 0:
                 break
-    texels, mean, stderr, area, claims = texel_reduce(samples.texel, moments.mean(), moments.stderr(), samples.area)
-    rays = np.bincount(np.unique(samples.texel, return_inverse=True)[1], weights=moments.count).astype(np.int32)
+    texels, mean, stderr, area, claims, rays = texel_reduce(samples.texel, moments.mean(), moments.stderr(),
+                                                            samples.area, moments.count)
     rows, cols = texels // width, texels % width
     ctx.values[rows, cols] = mean
     ctx.stderr[rows, cols] = stderr

@@ -121,6 +121,7 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
     ThickbakeError
         Missing files, a sidecar without an encoding, or an image that does not match it.
     """
+    from .encode import decode
     from .output import read_image, read_sidecar
 
     path = Path(path)
@@ -159,8 +160,8 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
     if expected is None or image.dtype != expected:
         raise ThickbakeError(f"the sidecar says codes go to {code_max} but the image holds {image.dtype}",
                              path=path, fix="keep each map with the sidecar written beside it")
-    values = offset + scale * (image.astype(np.float64) / code_max)
     bits = 8 if code_max == 255 else 16
+    values = decode(image, offset, scale, bits)
     return DecodedMap(path, values, measure, reach, abs(scale), abs(scale) / code_max, f"{bits}-bit PNG",
                       side.get("coverage"))
 

@@ -76,7 +76,7 @@ class Moments:
 
 
 def texel_reduce(texel: np.ndarray, sample_mean: np.ndarray, sample_stderr: np.ndarray,
-                 sample_area: np.ndarray):
+                 sample_area: np.ndarray, sample_rays: np.ndarray):
     """Combine sample statistics into texel statistics.
 
     Parameters
@@ -84,6 +84,8 @@ def texel_reduce(texel: np.ndarray, sample_mean: np.ndarray, sample_stderr: np.n
     texel : (n,) int64
         Texel of each sample (any order).
     sample_mean, sample_stderr, sample_area : (n,) float64
+    sample_rays : (n,) int64
+        Rays traced per sample.
 
     Returns
     -------
@@ -97,10 +99,13 @@ def texel_reduce(texel: np.ndarray, sample_mean: np.ndarray, sample_stderr: np.n
         World area the texel represents, scene units².
     claims : (t,) int64
         Samples per texel.
+    rays : (t,) int64
+        Rays traced per texel.
     """
     texels, inverse, claims = np.unique(texel, return_inverse=True, return_counts=True)
     s = claims.astype(np.float64)
     mean = np.bincount(inverse, weights=sample_mean, minlength=len(texels)) / s
     stderr = np.sqrt(np.bincount(inverse, weights=sample_stderr ** 2, minlength=len(texels))) / s
     area = np.bincount(inverse, weights=sample_area, minlength=len(texels))
-    return texels, mean, stderr, area, claims
+    rays = np.bincount(inverse, weights=sample_rays, minlength=len(texels)).astype(np.int64)
+    return texels, mean, stderr, area, claims, rays
