@@ -120,12 +120,18 @@ class BakeResult:
         measure for ``.tif``/``.tiff`` (both padded)."""
         return self.codes() if suffix.lower() == ".png" else self.padded().astype(np.float32)
 
-    def encode(self, map_name: str) -> tuple[bytes, dict]:
-        """The map file's bytes and its sidecar for a map called ``map_name`` (suffix picks the format)."""
+    def encode(self, map_name: str, image: np.ndarray | None = None) -> tuple[bytes, dict]:
+        """The map file's bytes and its sidecar for a map called ``map_name`` (suffix picks the format).
+
+        ``image`` is :meth:`image` for that suffix when the caller already has it (padding and
+        quantising a large map is not free).
+        """
         from .output import image_bytes
 
         suffix = Path(map_name).suffix.lower()
-        return image_bytes(self.image(suffix), suffix), self.sidecar(map_name)
+        if image is None:
+            image = self.image(suffix)
+        return image_bytes(image, suffix), self.sidecar(map_name)
 
     def write(self, map_path: str | os.PathLike, error_out: str | os.PathLike | None = None) -> Path:
         """Write the map (PNG codes or float32 TIFF of the measure) and its sidecar, atomically."""

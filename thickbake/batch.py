@@ -554,7 +554,7 @@ def _task(plan: BatchPlan, job: AssetJob, threads: int | None) -> dict:
 
 def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
     """Record a worker's result on the job and write its map and sidecar (sidecar last)."""
-    from .output import atomic_write_bytes, json_bytes
+    from .output import sidecar_path, write_map
 
     job.worker_seconds = result.get("worker_seconds")
     job.threads = result.get("threads")
@@ -566,13 +566,12 @@ def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
         job.failure_kind = result.get("failure") or "internal"
         job.traceback = result.get("traceback")
         return
-    map_path = out / job.map_rel
+    assert sidecar_path(out / job.map_rel) == out / job.sidecar_rel
     try:
-        atomic_write_bytes(map_path, result["map_bytes"])
-        atomic_write_bytes(out / job.sidecar_rel, json_bytes(result["sidecar"]))
-    except OSError as exc:
+        write_map(out / job.map_rel, result["map_bytes"], result["sidecar"])  # sidecar last, atomic each
+    except ThickbakeError as exc:
         job.status = "failed"
-        job.error = f"{map_path}: cannot write the map ({exc.strerror or exc}); check free space and permissions"
+        job.error = exc.one_line()
         return
     job.status = "baked"
     job.sidecar = result["sidecar"]

@@ -96,7 +96,7 @@ def _bake_asset(task: dict) -> dict:
     suffix = FORMATS[task["format"]]
     assert Path(task["map_name"]).suffix.lower() == suffix
     image = result.image(suffix)
-    data, sidecar = result.encode(task["map_name"])
+    data, sidecar = result.encode(task["map_name"], image)
     sidecar["batch"] = dict(task["batch"], map_sha256=hashlib.sha256(data).hexdigest())
     return {"map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
             "threads": settings.threads, "warnings": list(asset.report.warnings) + list(result.info["warnings"])}
