@@ -1,6 +1,6 @@
 """Batch baking of an asset folder: rules, incremental skips, failure isolation, crash safety, report, cluster.
 
-The fixture library is generated here: UV spheres (lat-long UVs, written as OBJ, GLB and PLY) in nested
+The fixture library is generated here: the package's UV spheres (squashed, written as OBJ, GLB and PLY) in nested
 folders, a GLB of garbage bytes, an OBJ without UVs and a rules file with an override.  Maps are tiny
 (32–48 texels, 8–16 rays) so every bake takes milliseconds; what costs time is starting the pool.
 """
@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 import trimesh
 
-from thickbake import batch, cli, runners
+from thickbake import batch, cli, runners, shapes
 from thickbake.mesh import file_sha256
 from thickbake.output import read_image
 from thickbake.rules import glob_regex
@@ -44,23 +44,11 @@ BROKEN = ["broken/corrupt.glb", "broken/flat_no_uv.obj"]
 
 
 # ---------------------------------------------------------------------------- fixtures
-def uv_sphere(radius=1.0, rows=10, cols=20, squash=(1.0, 1.0, 1.0)) -> trimesh.Trimesh:
-    """Closed lat-long sphere with UVs (u = longitude, v = latitude); pole slivers dropped."""
-    theta = np.linspace(0, np.pi, rows + 1)
-    phi = np.linspace(0, 2 * np.pi, cols + 1)
-    t, p = np.meshgrid(theta, phi, indexing="ij")
-    vertices = np.stack([np.sin(t) * np.cos(p), np.sin(t) * np.sin(p), np.cos(t)], -1).reshape(-1, 3)
-    vertices = vertices * radius * np.asarray(squash)
-    uv = np.stack([p / (2 * np.pi), 1 - t / np.pi], -1).reshape(-1, 2)
-    idx = np.arange((rows + 1) * (cols + 1)).reshape(rows + 1, cols + 1)
-    a, b, c, d = idx[:-1, :-1], idx[:-1, 1:], idx[1:, :-1], idx[1:, 1:]
-    faces = np.concatenate([np.stack([a, c, d], -1).reshape(-1, 3), np.stack([a, d, b], -1).reshape(-1, 3)])
-    tri = vertices[faces]
-    area = np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
-    mesh = trimesh.Trimesh(vertices, faces[area > 1e-12], process=False,
-                           visual=trimesh.visual.TextureVisuals(uv=uv))
-    mesh.remove_unreferenced_vertices()  # two seam copies of each pole are left unused
-    return mesh
+def uv_sphere(radius=1.0, segments=12, squash=(1.0, 1.0, 1.0)) -> trimesh.Trimesh:
+    """The package's UV-mapped sphere (thickbake.shapes), coarse and optionally squashed, without normals."""
+    sphere = shapes.sphere(radius=radius, segments=segments).mesh
+    return trimesh.Trimesh(sphere.vertices * np.asarray(squash), sphere.faces, process=False,
+                           visual=trimesh.visual.TextureVisuals(uv=sphere.visual.uv))
 
 
 def write_mesh(path: Path, mesh: trimesh.Trimesh, uv: bool = True) -> None:
@@ -83,7 +71,7 @@ def make_library(root: Path, rules: str = RULES) -> Path:
     write_mesh(src / "garden/leaf.obj", uv_sphere(1.0, squash=(1.0, 0.6, 0.1)))
     write_mesh(src / "garden/beds/pebble.glb", uv_sphere(0.5, squash=(1.0, 0.8, 0.5)))
     write_mesh(src / "props/candle.glb", uv_sphere(0.3, squash=(1.0, 1.0, 3.0)))
-    write_mesh(src / "props/bowl.ply", uv_sphere(2.0, rows=8, cols=16))
+    write_mesh(src / "props/bowl.ply", uv_sphere(2.0, segments=18))
     (src / "broken").mkdir(parents=True)
     (src / "broken/corrupt.glb").write_bytes(np.random.default_rng(7).bytes(2000))
     write_mesh(src / "broken/flat_no_uv.obj", uv_sphere(1.0), uv=False)
@@ -360,7 +348,7 @@ SLOW_RULES = "[defaults]\nsize = 128\nrays = 64\n"
 def slow_library(root: Path, count: int = 6) -> Path:
     src = root / "assets"
     for i in range(count):
-        write_mesh(src / f"set{i % 2}/ball{i}.obj", uv_sphere(1.0 + 0.1 * i, rows=12, cols=24))
+        write_mesh(src / f"set{i % 2}/ball{i}.obj", uv_sphere(1.0 + 0.1 * i, segments=24))
     (src / "thickbake.toml").write_text(SLOW_RULES)
     return src
 
