@@ -10,7 +10,7 @@ Lobes, for a cone of half-angle α around +z (c = cos α), with φ = 2π·u₂:
 * ``cosine`` (pdf ∝ cosθ): sin²θ = u₁·sin²α, i.e. Malley's method — points uniform on the disk of
   radius sin α projected up to the hemisphere; pdf = cosθ / (π sin²α).  With α = 90° this is the
   cosine-weighted hemisphere, pdf = cosθ/π (Pharr, Jakob & Humphreys, *Physically Based Rendering*,
-  4th ed., §A.5 "Sampling the cosine-weighted hemisphere").
+  4th ed., sampling appendix, "cosine-weighted hemisphere sampling" — from memory).
 
 The polar form (r = √u₁, φ = 2πu₂) is used rather than the concentric disk map: it keeps u₁ a
 function of θ alone, so a 1-D stratification of u₁ stratifies the polar angle exactly.
