@@ -42,8 +42,8 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 import thickbake  # noqa: E402
-from thickbake.mesh import load_asset  # noqa: E402
-from thickbake.trace import EmbreeEngine  # noqa: E402
+from thickbake.pipeline.load import load_asset  # noqa: E402
+from thickbake.pipeline.trace import EmbreeEngine  # noqa: E402
 
 
 def bumpy_torus(faces_target: int = 80_000):
@@ -143,7 +143,7 @@ def asset_trimesh(asset):
 
 
 def bench_noise(size: int, rays: int) -> dict:
-    from thickbake import shapes
+    from thickbake.checks import shapes
 
     sphere = shapes.sphere(radius=1.0)
     out = {}
@@ -241,7 +241,7 @@ def main(argv=None) -> int:
     print(f"independent random           {n['rms_random']:.5f}")
     print(f"ratio = {n['ratio_sobol_over_random']:.3f}  (target <= 0.5)")
 
-    from thickbake import shapes
+    from thickbake.checks import shapes
 
     adaptive_size = 32 if args.quick else 192
     # a leaf-thin shell (wall 0.5% of its radius) beside a solid ball of half its radius; 88% of

@@ -24,8 +24,8 @@ import trimesh
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout without installing
 
-from thickbake.output import atomic_write_bytes  # noqa: E402
-from thickbake.surfaces import (  # noqa: E402
+from thickbake.maps.files import atomic_write_bytes  # noqa: E402
+from thickbake.checks.surfaces import (  # noqa: E402
     Surface,
     arc_piece,
     assemble_mesh,

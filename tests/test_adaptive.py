@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 import thickbake
-from thickbake import shapes
+from thickbake.checks import shapes
 
 ROOT = Path(__file__).resolve().parent.parent
 

@@ -24,9 +24,9 @@ from scipy import integrate
 from scipy.stats import norm
 
 import thickbake
-from thickbake import shapes
-from thickbake.encode import decode
-from thickbake.output import read_image
+from thickbake.checks import shapes
+from thickbake.maps.encode import decode
+from thickbake.maps.files import read_image
 
 
 def z_bonferroni(m: int, alpha: float = 1e-3) -> float:

@@ -22,10 +22,13 @@ import numpy as np
 import pytest
 import trimesh
 
-from thickbake import batch, cli, runners, shapes
-from thickbake.mesh import file_sha256
-from thickbake.output import read_image
-from thickbake.rules import glob_regex
+from thickbake import cli
+from thickbake.batch import plan as batch
+from thickbake.batch import runners
+from thickbake.checks import shapes
+from thickbake.pipeline.load import file_sha256
+from thickbake.maps.files import read_image
+from thickbake.batch.rules import glob_regex
 
 RULES = """\
 # demo rules: small maps everywhere, a finer map for the garden

@@ -7,7 +7,7 @@ import sys
 import numpy as np
 import pytest
 
-from thickbake import shapes
+from thickbake.checks import shapes
 
 
 def run(*args, cwd=None):
@@ -101,7 +101,7 @@ def test_error_out_and_tiff(box_obj, tmp_path):
     assert proc.returncode == 0, proc.stderr
     side = json.loads((tmp_path / "m.json").read_text())
     assert side["encoding"]["scale"] == 1.0 and side["error_map"] == "m_err.tif"
-    from thickbake.output import read_image
+    from thickbake.maps.files import read_image
     err = read_image(tmp_path / "m_err.tif")
     assert err.dtype == np.float32 and err.max() > 0
 

@@ -7,10 +7,10 @@ import pytest
 from PIL import Image
 
 import thickbake
-from thickbake import shapes
-from thickbake.cli import main
-from thickbake.compare import COLOUR_A_ABOVE, COLOUR_A_BELOW, LEGEND_HEIGHT, LEGEND_MIN_WIDTH, compare_maps, load_map
-from thickbake.output import atomic_write_bytes, image_bytes, json_bytes
+from thickbake.checks import shapes
+from thickbake.cli.main import main
+from thickbake.checks.compare import COLOUR_A_ABOVE, COLOUR_A_BELOW, LEGEND_HEIGHT, LEGEND_MIN_WIDTH, compare_maps, load_map
+from thickbake.maps.files import atomic_write_bytes, image_bytes, json_bytes
 
 SIZE = 64
 

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from thickbake import directions as D
+from thickbake.pipeline import directions as D
 
 
 @pytest.mark.parametrize("lobe", ["cosine", "uniform"])

@@ -23,7 +23,7 @@ import trimesh
 from scipy import integrate, optimize
 from trimesh.ray.ray_triangle import RayMeshIntersector
 
-from thickbake import shapes as S
+from thickbake.checks import shapes as S
 
 EPS = np.finfo(np.float64).eps
 F32 = 2.0**-24  # float32 unit roundoff (glTF stores float32)

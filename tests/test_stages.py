@@ -5,7 +5,11 @@ import math
 import numpy as np
 import pytest
 
-from thickbake import encode, padding, texels
+from thickbake.maps import encode
+
+from thickbake.maps import padding
+
+from thickbake.pipeline import texels
 from thickbake.errors import ThickbakeError
 from thickbake.settings import BakeSettings, default_pad, parse_size
 
@@ -146,7 +150,7 @@ def test_engines_agree():
     # the two ray backends answer the same rays alike (two backends behind one interface must agree)
     import trimesh
 
-    from thickbake.trace import EmbreeEngine, TrimeshEngine
+    from thickbake.pipeline.trace import EmbreeEngine, TrimeshEngine
 
     mesh = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
     rng = np.random.default_rng(4)
@@ -180,8 +184,8 @@ def test_islands_without_overlap_report_none():
     # the sphere's UV layout has no overlapping islands (tests/test_shapes.py checks that), and its
     # 45° diagonals pass through texel centres at 256²: the top-left rule must give each centre to
     # exactly one triangle, which needs exactly opposite edge functions on shared edges
-    from thickbake import shapes
-    from thickbake.mesh import load_asset
+    from thickbake.checks import shapes
+    from thickbake.pipeline.load import load_asset
 
     asset = load_asset(shapes.sphere().mesh)
     for size in (192, 256):

@@ -15,15 +15,15 @@ import pytest
 import trimesh
 from scipy import integrate, stats
 
-from thickbake import shapes
-from thickbake.cli import main
-from thickbake.mesh import load_asset
-from thickbake.meshcheck import face_orientation, front_face_hits
-from thickbake.quadrature import _clip_moments, exact_texel_coverage
-from thickbake.tolerance import (CHEBYSHEV_K95, bonferroni_k, measure_value, sphere_cone_expected,
+from thickbake.checks import shapes
+from thickbake.cli.main import main
+from thickbake.pipeline.load import load_asset
+from thickbake.checks.meshcheck import face_orientation, front_face_hits
+from thickbake.checks.coverage import _clip_moments, exact_texel_coverage
+from thickbake.checks.error_budget import (CHEBYSHEV_K95, bonferroni_k, measure_value, sphere_cone_expected,
                                  sphere_systematic_bound)
-from thickbake.trace import make_engine
-from thickbake.verify import VERIFY_DEFAULTS
+from thickbake.pipeline.trace import make_engine
+from thickbake.checks.verify import VERIFY_DEFAULTS
 
 
 def run_cli(capsys, *args):

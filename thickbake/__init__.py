@@ -7,20 +7,19 @@
 The heavy modules load on first use, so ``thickbake --help`` answers at once.
 """
 
-__version__ = "0.1.0"
-
-from .errors import ThickbakeError  # noqa: E402
+from thickbake.errors import ThickbakeError
+from thickbake.version import __version__
 
 __all__ = ["__version__", "bake", "BakeResult", "BakeSettings", "ThickbakeError"]
 
 
 def __getattr__(name):
     if name == "BakeSettings":
-        from .settings import BakeSettings
+        from thickbake.settings import BakeSettings
 
         return BakeSettings
     if name in ("bake", "BakeResult"):
-        from . import baker
+        from thickbake.pipeline import driver
 
-        return getattr(baker, name)
+        return getattr(driver, name)
     raise AttributeError(f"module 'thickbake' has no attribute {name!r}")

@@ -1,5 +1,7 @@
+"""``python -m thickbake``: the same entry point as the ``thickbake`` command."""
+
 import sys
 
-from .cli import main
+from thickbake.cli import main
 
 sys.exit(main())

@@ -17,7 +17,7 @@ import os
 from dataclasses import dataclass, fields
 from typing import Any
 
-from .errors import ThickbakeError
+from thickbake.errors import ThickbakeError
 
 MEASURES = ("thickness", "transmittance", "occlusion")
 LOBES = ("cosine", "uniform")

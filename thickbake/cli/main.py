@@ -13,7 +13,7 @@ import os
 import sys
 import time
 
-from .errors import ThickbakeError
+from thickbake.errors import ThickbakeError
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE = 0, 1, 2
 
@@ -27,7 +27,7 @@ class _Parser(argparse.ArgumentParser):
 
 # ---------------------------------------------------------------------------- bake options
 def _size(text):
-    from .settings import parse_size
+    from thickbake.settings import parse_size
 
     try:
         return parse_size(text)
@@ -96,7 +96,7 @@ def bake_options_from_args(args: argparse.Namespace) -> dict:
 
 
 def settings_from_args(args: argparse.Namespace):
-    from .settings import BakeSettings
+    from thickbake.settings import BakeSettings
 
     return BakeSettings.from_mapping(bake_options_from_args(args), where="command-line options")
 
@@ -164,9 +164,9 @@ def summary_line(result, source: str, out: str) -> str:
 
 # ---------------------------------------------------------------------------- commands
 def cmd_bake(args) -> int:
-    from .baker import bake
-    from .mesh import load_asset
-    from .output import check_output_path
+    from thickbake.pipeline.driver import bake
+    from thickbake.pipeline.load import load_asset
+    from thickbake.maps.files import check_output_path
 
     settings = settings_from_args(args)
     check_output_path(args.output, args.error_out)
@@ -185,7 +185,7 @@ def cmd_bake(args) -> int:
 
 
 def cmd_shapes(args) -> int:
-    from .shapes import write_shape_set
+    from thickbake.checks.shapes import write_shape_set
 
     paths = write_shape_set(args.outdir)
     print(f"wrote {len(paths)} files to {args.outdir}")
@@ -193,25 +193,25 @@ def cmd_shapes(args) -> int:
 
 
 def cmd_verify(args) -> int:
-    from . import verify
+    from thickbake.checks import verify
 
     return verify.run_from_args(args)
 
 
 def cmd_compare(args) -> int:
-    from . import compare
+    from thickbake.checks import compare
 
     return compare.run_from_args(args)
 
 
 def cmd_batch(args) -> int:
-    from . import batch
+    from thickbake.batch import plan as batch
 
     return batch.run_from_args(args)
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from . import __version__
+    from thickbake.version import __version__
 
     parser = _Parser(prog="thickbake", description="Bake thickness maps for real-time translucency (CPU ray casting).")
     parser.add_argument("--version", action="version", version=f"thickbake {__version__}")

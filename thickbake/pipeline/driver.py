@@ -20,17 +20,17 @@ from typing import Callable
 
 import numpy as np
 
-from . import __version__
-from .directions import ray_directions, sample_keys, variates
-from .encode import decode_coefficients, normalise, quantise
-from .errors import ThickbakeError
-from .measures import Moments, ray_values, texel_reduce
-from .mesh import Asset, load_asset
-from .output import check_output_path, write_map
-from .padding import pad_map
-from .settings import BakeSettings
-from .trace import inward_origins
-from .texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
+from thickbake.version import __version__
+from thickbake.pipeline.directions import ray_directions, sample_keys, variates
+from thickbake.maps.encode import decode_coefficients, normalise, quantise
+from thickbake.errors import ThickbakeError
+from thickbake.pipeline.measures import Moments, ray_values, texel_reduce
+from thickbake.pipeline.load import Asset, load_asset
+from thickbake.maps.files import check_output_path, write_map
+from thickbake.maps.padding import pad_map
+from thickbake.settings import BakeSettings
+from thickbake.pipeline.trace import inward_origins
+from thickbake.pipeline.texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
 
 #: First batch of rays per sample in adaptive mode; later batches double the count, so every sample
 #: ends on a power-of-two prefix of its low-discrepancy sequence.  16 rays give a usable variance
@@ -126,7 +126,7 @@ class BakeResult:
         ``image`` is :meth:`image` for that suffix when the caller already has it (padding and
         quantising a large map is not free).
         """
-        from .output import image_bytes
+        from thickbake.maps.files import image_bytes
 
         suffix = Path(map_name).suffix.lower()
         if image is None:
@@ -196,7 +196,7 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
     asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
     s = settings.resolve(asset.diagonal)
     if engine is None:
-        from .trace import make_engine
+        from thickbake.pipeline.trace import make_engine
         engine = make_engine(asset.trace_vertices, asset.trace_faces)
     width, height = s.size
 

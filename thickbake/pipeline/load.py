@@ -27,7 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import ThickbakeError
+from thickbake.errors import ThickbakeError
 
 MESH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply", ".off", ".stl")
 #: Vertices closer than this fraction of the bounding-box diagonal are merged for tracing.  Seam

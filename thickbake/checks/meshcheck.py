@@ -217,9 +217,9 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
     bias : float, optional
         Scene units.
     """
-    from .directions import ray_directions
-    from .texels import EDGE_MARGIN_BIASES, keep_off_edges
-    from .trace import inward_origins
+    from thickbake.pipeline.directions import ray_directions
+    from thickbake.pipeline.texels import EDGE_MARGIN_BIASES, keep_off_edges
+    from thickbake.pipeline.trace import inward_origins
 
     rng = np.random.default_rng(seed)
     tri = asset.trace_vertices[asset.trace_faces]

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import ThickbakeError
+from thickbake.errors import ThickbakeError
 
 IMAGE_SUFFIXES = (".png", ".tif", ".tiff")
 #: The process umask, read once: ``tempfile.mkstemp`` creates 0600 files, and outputs should get the

@@ -24,13 +24,13 @@ import traceback
 from pathlib import Path
 from typing import Callable
 
-from .errors import ThickbakeError
-from .rules import FORMATS
-from .settings import BakeSettings, usable_cores
+from thickbake.errors import ThickbakeError
+from thickbake.batch.rules import FORMATS
+from thickbake.settings import BakeSettings, usable_cores
 
 #: Modules the fork server imports once, so that pool processes start without importing them.
-_POOL_PRELOAD = ["thickbake.runners", "thickbake.batch", "thickbake.baker", "thickbake.mesh", "thickbake.trace",
-                 "thickbake.report", "trimesh", "embreex.rtcore_scene", "scipy.stats.qmc", "PIL.PngImagePlugin",
+_POOL_PRELOAD = ["thickbake.batch.runners", "thickbake.batch.plan", "thickbake.pipeline.driver",
+                 "thickbake.pipeline.load", "thickbake.pipeline.trace", "thickbake.batch.report", "trimesh", "embreex.rtcore_scene", "scipy.stats.qmc", "PIL.PngImagePlugin",
                  "PIL.TiffImagePlugin"]
 #: How long to try reaching a dask scheduler before giving up.
 CLUSTER_CONNECT_SECONDS = 10
@@ -84,9 +84,9 @@ def bake_asset(task: dict) -> dict:
 
 
 def _bake_asset(task: dict) -> dict:
-    from .baker import bake
-    from .mesh import load_asset
-    from .report import thumbnail_png
+    from thickbake.pipeline.driver import bake
+    from thickbake.pipeline.load import load_asset
+    from thickbake.batch.report import thumbnail_png
 
     settings = BakeSettings.from_mapping(task["settings"], where=task["source"])
     if settings.threads is None:

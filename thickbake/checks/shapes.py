@@ -46,8 +46,8 @@ from typing import Callable, Sequence
 import numpy as np
 import trimesh
 
-from .output import atomic_write_bytes
-from .surfaces import (
+from thickbake.maps.files import atomic_write_bytes
+from thickbake.checks.surfaces import (
     ISLAND_GAP,
     ProfilePiece,
     Surface,
@@ -66,9 +66,9 @@ from .surfaces import (
     sphere_surface,
     uv_islands,
 )
-from .surfaces import _cross2  # noqa: F401  (unused here; tests/test_shapes.py calls shapes._cross2)
+from thickbake.checks.surfaces import _cross2  # noqa: F401  (unused here; tests/test_shapes.py calls shapes._cross2)
 
-from . import surfaces as _surfaces  # noqa: E402
+from thickbake.checks import surfaces as _surfaces  # noqa: E402
 
 #: The shapes and their closed forms, plus the builders of :mod:`thickbake.surfaces` re-exported.
 __all__ = [

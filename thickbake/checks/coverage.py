@@ -33,7 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .texels import SurfaceSamples, pixel_triangles, place_samples, rasterise_tile
+from thickbake.pipeline.texels import SurfaceSamples, pixel_triangles, place_samples, rasterise_tile
 
 #: (triangle, texel) candidate pairs clipped at once; ~1 KiB of temporaries each.
 CLIP_BATCH = 1 << 17

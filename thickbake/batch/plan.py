@@ -91,11 +91,11 @@ from pathlib import Path, PurePosixPath
 from typing import Callable
 from urllib.parse import unquote
 
-from . import __version__
-from .errors import ThickbakeError
-from .rules import FORMATS, AssetOptions, RulesFile, find_rules_file, load_rules
-from .runners import ClusterRunner, LocalRunner, WorkerDied, available_cores, bake_asset
-from .settings import BakeSettings
+from thickbake.version import __version__
+from thickbake.errors import ThickbakeError
+from thickbake.batch.rules import FORMATS, AssetOptions, RulesFile, find_rules_file, load_rules
+from thickbake.batch.runners import ClusterRunner, LocalRunner, WorkerDied, available_cores, bake_asset
+from thickbake.settings import BakeSettings
 
 #: Mesh files a batch picks up (matched case-insensitively).
 BATCH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply")
@@ -215,7 +215,7 @@ def input_digests(path: Path) -> tuple[str, str]:
     A ``.gltf`` keeps its vertex data in external ``.bin`` buffers; their bytes count as input too.
     For every other file the two digests are equal.
     """
-    from .mesh import file_sha256
+    from thickbake.pipeline.load import file_sha256
 
     main = file_sha256(path)
     if path.suffix.lower() != ".gltf":
@@ -317,7 +317,7 @@ def _mark_up_to_date(plan: BatchPlan, force: bool) -> None:
 
 def _previous_user_failures(out: Path) -> dict[str, dict]:
     """Rows of the previous ``report.json`` that failed with a user error, by source path."""
-    from .report import REPORT_JSON
+    from thickbake.batch.report import REPORT_JSON
 
     try:
         previous = json.loads((out / REPORT_JSON).read_text("utf-8"))
@@ -331,7 +331,7 @@ def _previous_user_failures(out: Path) -> dict[str, dict]:
 
 def _outdated_reason(job: AssetJob, out: Path) -> str | None:
     """None when the outputs on disk are up to date (and then ``job.sidecar`` is set), else why not."""
-    from .mesh import file_sha256
+    from thickbake.pipeline.load import file_sha256
 
     map_path = out / job.map_rel
     side_path = out / job.sidecar_rel
@@ -456,7 +456,7 @@ def run_batch(src, out, config=None, *, jobs: int | None = None, force: bool = F
             interrupted = False
             if todo:
                 interrupted = _run_jobs(plan, todo, runner, threads, progress, notify)
-            from .report import batch_thumbnails, build_report, write_reports
+            from thickbake.batch.report import batch_thumbnails, build_report, write_reports
 
             report = build_report(plan, started_at, time.perf_counter() - started, cores, jobs_used, threads,
                                   cluster, force, interrupted)
@@ -554,7 +554,7 @@ def _task(plan: BatchPlan, job: AssetJob, threads: int | None) -> dict:
 
 def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
     """Record a worker's result on the job and write its map and sidecar (sidecar last)."""
-    from .output import sidecar_path, write_map
+    from thickbake.maps.files import sidecar_path, write_map
 
     job.worker_seconds = result.get("worker_seconds")
     job.threads = result.get("threads")
@@ -682,7 +682,7 @@ def run_from_args(args) -> int:
         print("\n".join(format_plan(plan)))
         return EXIT_OK
 
-    from .cli import ProgressBar
+    from thickbake.cli.main import ProgressBar
 
     bar = ProgressBar("batch", enabled=False if args.quiet else None)
 

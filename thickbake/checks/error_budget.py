@@ -57,7 +57,7 @@ import math
 
 import numpy as np
 
-from .shapes import _g1, _g2  # the same cancellation-free forms as the cone closed forms
+from thickbake.checks.shapes import _g1, _g2  # the same cancellation-free forms as the cone closed forms
 
 #: Family-wise false-alarm rate of the per-texel "every texel" criterion.
 FAMILY_ALPHA = 1e-3
@@ -82,7 +82,7 @@ def float32_term(diagonal: float) -> float:
 
 def half_code_step(measure: str, reach: float, bits: int) -> float:
     """Half an integer code step in measure units (round-to-nearest quantisation)."""
-    from .encode import quantisation_step
+    from thickbake.maps.encode import quantisation_step
 
     return 0.5 * quantisation_step(measure, reach, int(bits))
 
@@ -102,7 +102,7 @@ def bonferroni_k(texels: int, dof: int, alpha: float = FAMILY_ALPHA) -> float:
 # ---------------------------------------------------------------------------- measures
 def measure_value(chord, measure: str, reach: float, attenuation_distance: float | None):
     """The bake's per-ray value g(ℓ) of a hit at distance ℓ (scene units): :func:`thickbake.measures.ray_values`."""
-    from .measures import ray_values
+    from thickbake.pipeline.measures import ray_values
 
     chord = np.asarray(chord, np.float64)
     return ray_values(chord, chord < reach, measure, reach, attenuation_distance)

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from thickbake.version import __version__
 
 #: Longest side of a thumbnail in pixels: large enough to recognise a UV layout, small enough that a
 #: thousand assets stay a page of a few megabytes.
@@ -73,8 +73,8 @@ def thumbnail_png(image: np.ndarray, side: int = THUMBNAIL_SIDE) -> bytes:
 
 def thumbnail_from_file(map_path: str | os.PathLike) -> bytes | None:
     """Thumbnail of a map on disk, or None if it cannot be read."""
-    from .errors import ThickbakeError
-    from .output import read_image
+    from thickbake.errors import ThickbakeError
+    from thickbake.maps.files import read_image
 
     try:
         return thumbnail_png(read_image(map_path))
@@ -87,7 +87,7 @@ def write_reports(out_dir: str | os.PathLike, report: dict, thumbnails: dict[str
 
     ``thumbnails`` maps an asset's source path (as in ``report["assets"][i]["source"]``) to PNG bytes.
     """
-    from .output import atomic_write_bytes, json_bytes
+    from thickbake.maps.files import atomic_write_bytes, json_bytes
 
     out_dir = Path(out_dir)
     json_path = out_dir / REPORT_JSON

@@ -34,8 +34,8 @@ import re
 from dataclasses import dataclass, fields
 from pathlib import Path
 
-from .errors import ThickbakeError
-from .settings import BakeSettings
+from thickbake.errors import ThickbakeError
+from thickbake.settings import BakeSettings
 
 #: Name of the rules file looked for in the source folder when ``--config`` is not given.
 DEFAULT_RULES_NAME = "thickbake.toml"

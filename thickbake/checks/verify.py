@@ -73,7 +73,7 @@ from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
-from .errors import ThickbakeError
+from thickbake.errors import ThickbakeError
 
 #: Options of ``thickbake verify`` when the user gives none: small enough for a two-core machine to
 #: check every shape in well under two minutes, large enough for thousands of texels per shape.
@@ -198,7 +198,7 @@ def _json_safe(obj):
 
 # ---------------------------------------------------------------------------- shared helpers
 def _settings(options: dict | None, where: str):
-    from .settings import BakeSettings
+    from thickbake.settings import BakeSettings
 
     merged = dict(VERIFY_DEFAULTS)
     merged.update(options or {})
@@ -207,7 +207,7 @@ def _settings(options: dict | None, where: str):
 
 def _decoded(result) -> np.ndarray:
     """(h·w,) float64 texel values as stored in the image and decoded through the sidecar formula."""
-    from .encode import decode, decode_coefficients
+    from thickbake.maps.encode import decode, decode_coefficients
 
     s = result.settings
     offset, scale = decode_coefficients(s.measure, s.reach, s.invert)
@@ -225,7 +225,7 @@ def _is_flat(asset) -> bool:
 
 def _dof(settings) -> int:
     """Degrees of freedom of each sample's variance estimate (rays per sample − 1)."""
-    from .baker import ADAPTIVE_FIRST_BATCH
+    from thickbake.pipeline.driver import ADAPTIVE_FIRST_BATCH
 
     if settings.cone == 0:
         return 0
@@ -247,7 +247,7 @@ def _settings_line(s) -> str:
 def _per_texel_row(subject: str, quantity: str, result, expected_t: np.ndarray, systematic_t: np.ndarray,
                    excluded_t: np.ndarray, sys_terms: str, settings, extra_note: str = "") -> Check:
     """Compare a map texel by texel with expected values and systematic bounds (all (h·w,))."""
-    from .tolerance import CHEBYSHEV_K95, FAMILY_ALPHA, bonferroni_k
+    from thickbake.checks.error_budget import CHEBYSHEV_K95, FAMILY_ALPHA, bonferroni_k
 
     covered = result.covered.ravel()
     use = covered & ~excluded_t
@@ -310,8 +310,8 @@ def _per_texel_hint(settings, mean_error: float) -> str:
 
 
 def _sphere_row(shape, asset, result) -> Check:
-    from .quadrature import texel_samples
-    from .tolerance import (float32_term, half_code_step, measure_lipschitz, sphere_cone_expected,
+    from thickbake.checks.coverage import texel_samples
+    from thickbake.checks.error_budget import (float32_term, half_code_step, measure_lipschitz, sphere_cone_expected,
                             sphere_systematic_bound)
 
     s = result.settings
@@ -336,8 +336,8 @@ def _sphere_row(shape, asset, result) -> Check:
 
 
 def _normal_row(shape, asset, result) -> Check:
-    from .quadrature import texel_samples
-    from .tolerance import float32_term, half_code_step, measure_modulus, measure_value
+    from thickbake.checks.coverage import texel_samples
+    from thickbake.checks.error_budget import float32_term, half_code_step, measure_modulus, measure_value
 
     s = result.settings
     ts = texel_samples(asset, s.width, s.height, s.supersample, s.bias)
@@ -385,8 +385,8 @@ def cauchy_not_applicable(settings, diagonal: float) -> str | None:
 
 
 def _mean_chord_row(subject: str, asset, result, expected: float, capped: bool) -> Check:
-    from .quadrature import exact_texel_coverage, texel_samples, weighted_mean_quadrature_bound
-    from .tolerance import (CAUCHY_BUDGET, CAUCHY_K, MEAN_CHORD_LIPSCHITZ, cauchy_bias_bound, float32_term,
+    from thickbake.checks.coverage import exact_texel_coverage, texel_samples, weighted_mean_quadrature_bound
+    from thickbake.checks.error_budget import (CAUCHY_BUDGET, CAUCHY_K, MEAN_CHORD_LIPSCHITZ, cauchy_bias_bound, float32_term,
                             half_code_step)
 
     s = result.settings
@@ -433,7 +433,7 @@ def _mean_chord_row(subject: str, asset, result, expected: float, capped: bool) 
 
 # ---------------------------------------------------------------------------- analytic shapes
 def _select_shapes(names: str | None):
-    from . import shapes
+    from thickbake.checks import shapes
 
     available = {s.name: s for s in shapes.analytic_set()}
     if not names:
@@ -466,8 +466,8 @@ def verify_shapes(options: dict | None = None, names: str | None = None) -> Veri
     -------
     VerifyReport
     """
-    from .baker import bake
-    from .mesh import load_asset
+    from thickbake.pipeline.driver import bake
+    from thickbake.pipeline.load import load_asset
 
     start = time.perf_counter()
     settings = _settings(options, "verify options")
@@ -519,10 +519,10 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
         BakeSettings fields; size, rays, seed, supersample, bias, sequence, bits and threads apply;
         the mean-chord bake overrides cone, lobe, measure, reach and invert.
     """
-    from .baker import bake
-    from .meshcheck import face_orientation, front_face_hits
-    from .mesh import load_asset
-    from .trace import make_engine
+    from thickbake.pipeline.driver import bake
+    from thickbake.checks.meshcheck import face_orientation, front_face_hits
+    from thickbake.pipeline.load import load_asset
+    from thickbake.pipeline.trace import make_engine
 
     start = time.perf_counter()
     asset = load_asset(source)
@@ -625,7 +625,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     # Cauchy's mean chord
     unsampled = 0.0
     if rep.area > 0:
-        from .quadrature import exact_texel_coverage
+        from thickbake.checks.coverage import exact_texel_coverage
 
         coverage = exact_texel_coverage(flat, s.width, s.height)
         unsampled = max(0.0, 1.0 - coverage.face_covered.sum() / rep.area)
@@ -685,8 +685,8 @@ def run_from_args(args) -> int:
     """``thickbake verify``: print the table, write ``--json``; 0 when nothing failed, else 1."""
     from pathlib import Path
 
-    from .cli import bake_options_from_args
-    from .output import atomic_write_bytes, json_bytes
+    from thickbake.cli.main import bake_options_from_args
+    from thickbake.maps.files import atomic_write_bytes, json_bytes
 
     json_path = getattr(args, "json", None)
     if json_path is not None and Path(json_path).is_dir():

@@ -43,7 +43,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import ThickbakeError
+from thickbake.errors import ThickbakeError
 
 #: Colour of A < B (blue) and A > B (red) at full saturation, and of texels empty in both maps.
 COLOUR_A_BELOW = np.array([33, 102, 172], np.float64)
@@ -121,8 +121,8 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
     ThickbakeError
         Missing files, a sidecar without an encoding, or an image that does not match it.
     """
-    from .encode import decode
-    from .output import read_image, read_sidecar
+    from thickbake.maps.encode import decode
+    from thickbake.maps.files import read_image, read_sidecar
 
     path = Path(path)
     if not path.exists():
@@ -306,7 +306,7 @@ def format_report(c: Comparison, max_share: float) -> list[str]:
 
 def run_from_args(args) -> int:
     """``thickbake compare``: returns 0 (within tolerance) or 1; raises ThickbakeError for bad input."""
-    from .output import atomic_write_bytes
+    from thickbake.maps.files import atomic_write_bytes
 
     max_share = float(getattr(args, "max_share", 0.0) or 0.0)
     if not (0.0 <= max_share <= 1.0):
