@@ -80,7 +80,6 @@ import json
 import os
 import re
 import signal
-import sys
 import threading
 import time
 from collections import deque
@@ -671,34 +670,6 @@ def summary_line(outcome: BatchOutcome) -> str:
     return f"batch: {', '.join(parts)} of {totals['assets']} assets in {outcome.seconds:.1f} s{how}; report {report}"
 
 
-def run_from_args(args) -> int:
-    """``thickbake batch``: the command-line layer over :func:`plan_batch` and :func:`run_batch`."""
-    if args.dry_run:
-        if args.jobs is not None and args.jobs < 1:
-            raise ThickbakeError(f"--jobs {args.jobs} is not allowed", fix="give at least 1")
-        plan = plan_batch(args.src, args.output, args.config, args.force)
-        for rule in plan.unused_rules:
-            print(f"thickbake: warning: {plan.rules.path}: {rule.label()} matches no asset", file=sys.stderr)
-        print("\n".join(format_plan(plan)))
-        return EXIT_OK
-
-    from thickbake.cli.main import ProgressBar
-
-    bar = ProgressBar("batch", enabled=False if args.quiet else None)
-
-    def notify(text: str) -> None:
-        bar.close()
-        print(f"thickbake: {text}", file=sys.stderr)
-
-    try:
-        outcome = run_batch(args.src, args.output, args.config, jobs=args.jobs, force=args.force,
-                            cluster=args.cluster, progress=bar, notify=notify)
-    finally:
-        bar.close()
-    print(summary_line(outcome))
-    return outcome.exit_code
-
-
 __all__ = ["run_batch", "plan_batch", "bake_asset", "find_meshes", "map_name", "input_digests", "clean_temp_files",
-           "format_plan", "summary_line", "run_from_args", "AssetJob", "BatchPlan", "BatchOutcome",
+           "format_plan", "summary_line", "AssetJob", "BatchPlan", "BatchOutcome",
            "MAP_TAG", "BATCH_SUFFIXES"]

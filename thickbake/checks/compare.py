@@ -112,6 +112,18 @@ class Comparison:
     def share_beyond(self) -> float:
         return self.beyond / self.count if self.count else 0.0
 
+    def to_dict(self) -> dict:
+        """The figures as plain JSON-able values (measure units; PSNR in dB, null when the maps are equal)."""
+        def described(m: DecodedMap) -> dict:
+            return {"path": str(m.path), "measure": m.measure, "reach": m.reach, "span": m.span, "step": m.step,
+                    "kind": m.kind, "coverage": m.coverage}
+
+        return {"a": described(self.a), "b": described(self.b), "texels_compared": self.count,
+                "rmse": self.rmse, "max_abs": self.max_abs, "peak": self.peak,
+                "psnr_db": None if math.isinf(self.psnr) else self.psnr, "tolerance": self.tolerance,
+                "tolerance_source": self.tolerance_source, "beyond": self.beyond, "a_above": self.a_above,
+                "a_below": self.a_below, "share_beyond": self.share_beyond}
+
 
 def load_map(path: str | os.PathLike) -> DecodedMap:
     """Read a map and its sidecar and decode it to measure units.
@@ -304,30 +316,5 @@ def format_report(c: Comparison, max_share: float) -> list[str]:
     ]
 
 
-def run_from_args(args) -> int:
-    """``thickbake compare``: returns 0 (within tolerance) or 1; raises ThickbakeError for bad input."""
-    from thickbake.maps.files import atomic_write_bytes
-
-    max_share = float(getattr(args, "max_share", 0.0) or 0.0)
-    if not (0.0 <= max_share <= 1.0):
-        raise ThickbakeError(f"--max-share {max_share:g} must be a share from 0 to 1", fix="e.g. --max-share 0.01")
-    out = getattr(args, "output", None)
-    if out is not None:
-        out_path = Path(out)
-        if out_path.suffix.lower() != ".png":
-            raise ThickbakeError("the difference image must be a PNG", path=out_path, fix="name it DIFF.png")
-        if out_path.is_dir():
-            raise ThickbakeError("the output is a folder", path=out_path, fix="give a file name such as diff.png")
-    a = load_map(args.a)
-    b = load_map(args.b)
-    comparison = compare_maps(a, b, getattr(args, "tolerance", None))
-    for line in format_report(comparison, max_share):
-        print(line)
-    if out is not None:
-        atomic_write_bytes(out, difference_image_bytes(comparison))
-        print(f"  difference image      {out}")
-    return 0 if comparison.share_beyond <= max_share else 1
-
-
 __all__ = ["DecodedMap", "Comparison", "load_map", "compare_maps", "difference_rgb", "difference_image_bytes",
-           "format_report", "run_from_args"]
+           "format_report"]

@@ -680,33 +680,4 @@ def _short(check: Check) -> str:
     return check.note[:60]
 
 
-# ---------------------------------------------------------------------------- command line
-def run_from_args(args) -> int:
-    """``thickbake verify``: print the table, write ``--json``; 0 when nothing failed, else 1."""
-    from pathlib import Path
-
-    from thickbake.cli.main import bake_options_from_args
-    from thickbake.maps.files import atomic_write_bytes, json_bytes
-
-    json_path = getattr(args, "json", None)
-    if json_path is not None and Path(json_path).is_dir():
-        raise ThickbakeError("the --json output is a folder", path=json_path,
-                             fix="give a file name such as verify.json")
-    options = bake_options_from_args(args)
-    if getattr(args, "mesh", None):
-        if getattr(args, "shapes", None):
-            raise ThickbakeError("--shapes applies to the analytic shapes, not to a mesh",
-                                 fix="drop --shapes, or drop MESH to verify the analytic shapes")
-        report = verify_asset(args.mesh, options)
-    else:
-        report = verify_shapes(options, getattr(args, "shapes", None))
-    for line in report.lines():
-        print(line)
-    print(f"({report.seconds:.1f} s)")
-    if json_path is not None:
-        atomic_write_bytes(json_path, json_bytes(report.to_dict()))
-    return 0 if report.passed else 1
-
-
-__all__ = ["VERIFY_DEFAULTS", "Check", "VerifyReport", "verify_shapes", "verify_asset", "cauchy_not_applicable",
-           "run_from_args"]
+__all__ = ["VERIFY_DEFAULTS", "Check", "VerifyReport", "verify_shapes", "verify_asset", "cauchy_not_applicable"]

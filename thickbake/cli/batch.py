@@ -1,0 +1,61 @@
+"""``thickbake batch``: every mesh under a folder, by a rules file, in parallel and incrementally."""
+
+from __future__ import annotations
+
+import sys
+
+from thickbake.cli.output import EXIT_OK, echo, one_line, print_warnings, verbose_lines
+from thickbake.errors import ThickbakeError
+
+EXAMPLES = """examples:
+  thickbake batch samples/ -o out/                 bake every asset; samples/thickbake.toml holds the rules
+  thickbake batch assets/ -o maps/ --dry-run -v    what would be baked, why, and with which settings
+  thickbake batch assets/ -o maps/ --cluster tcp://10.0.0.5:8786"""
+
+
+def add_parser(sub, common) -> None:
+    p = sub.add_parser("batch", parents=[common], help="bake every mesh under a folder (rules file, parallel, incremental)",
+                       description="Bake every .obj/.glb/.gltf/.ply under SRC into OUT, mirroring folders; "
+                                   "writes OUT/report.json and OUT/report.html.", epilog=EXAMPLES)
+    p.add_argument("src", metavar="SRC", help="folder of assets, searched recursively")
+    p.add_argument("-o", "--output", required=True, metavar="OUT",
+                   help="folder for the maps, sidecars and reports (mirrors SRC's folders)")
+    p.add_argument("--config", metavar="FILE", help="rules file (default SRC/thickbake.toml when present)")
+    p.add_argument("--jobs", type=int, metavar="N", help="assets baked at once (default: cores, at most the asset count)")
+    p.add_argument("--force", action="store_true", help="bake even assets whose outputs are up to date")
+    p.add_argument("--dry-run", action="store_true", help="print what would be baked or skipped and why; write nothing")
+    p.add_argument("--cluster", metavar="ADDRESS", help="dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    from thickbake.batch.plan import format_plan, plan_batch, run_batch, summary_line
+    from thickbake.cli.progress import ProgressBar
+
+    if args.jobs is not None and args.jobs < 1:
+        raise ThickbakeError(f"--jobs {args.jobs} is not allowed", fix="give a whole number of assets to bake at once, at least 1")
+    if args.dry_run:
+        plan = plan_batch(args.src, args.output, args.config, args.force)
+        for rule in plan.unused_rules:
+            print_warnings([f"{rule.label()} matches no asset"], str(plan.rules.path))
+        lines = format_plan(plan)
+        for line in lines[-1:] if args.quiet else lines:
+            echo(line)
+        return EXIT_OK
+
+    bar = ProgressBar("batch", enabled=False if args.quiet else None)
+
+    def notify(text: str) -> None:
+        bar.close()
+        print(f"thickbake: {one_line(text)}", file=sys.stderr)
+
+    try:
+        outcome = run_batch(args.src, args.output, args.config, jobs=args.jobs, force=args.force,
+                            cluster=args.cluster, progress=bar, notify=notify)
+    finally:
+        bar.close()
+    if args.verbose:
+        verbose_lines(format_plan(outcome.plan)[:-1])
+    if not args.quiet:
+        echo(summary_line(outcome))
+    return outcome.exit_code

@@ -1,0 +1,87 @@
+"""Command-line options that become :class:`~thickbake.settings.BakeSettings` fields.
+
+Every bake option defaults to None ("not given"), so a command can merge the options a user typed
+over its own defaults or a rules file's.  Parsing happens here once; the library only ever sees the
+validated settings object.
+"""
+
+from __future__ import annotations
+
+import argparse
+
+from thickbake.errors import ThickbakeError
+
+
+def _size(text):
+    from thickbake.settings import parse_size
+
+    try:
+        return parse_size(text)
+    except ThickbakeError as exc:
+        raise argparse.ArgumentTypeError(exc.one_line()) from None
+
+
+def _pad(text):
+    if text == "fill":
+        return "fill"
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of texels or 'fill'") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError("padding must be ≥ 0 texels")
+    return value
+
+
+BAKE_OPTION_NAMES = ("size", "rays", "cone", "lobe", "measure", "reach", "attenuation_distance", "invert",
+                     "supersample", "pad", "bits", "seed", "threads", "bias", "sequence", "target_error",
+                     "chunk_rays", "order")
+
+
+def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024", rays_default: str = "64") -> None:
+    """Options that become :class:`BakeSettings` fields (defaults stay None = "not given").
+
+    ``size_default``/``rays_default`` are only the help text: commands such as verify that bake with
+    their own defaults say so.
+    """
+    g = parser.add_argument_group("bake options (lengths in scene units)")
+    g.add_argument("--size", type=_size, metavar="N|WxH", help=f"map size in texels (default {size_default}; e.g. 2048x1024)")
+    g.add_argument("--rays", type=int, metavar="N",
+                   help=f"rays per surface sample (default {rays_default}; the cap with --target-error)")
+    g.add_argument("--cone", type=float, metavar="DEG",
+                   help="half-angle of the cone around the inward normal: 0 = straight in (one ray), 90 = hemisphere (default 90)")
+    g.add_argument("--lobe", choices=("cosine", "uniform"), help="direction density in the cone (default cosine)")
+    g.add_argument("--measure", choices=("thickness", "transmittance", "occlusion"),
+                   help="thickness: mean chord in scene units (default); transmittance: mean exp(-d/L); "
+                        "occlusion: fraction of rays hitting within --reach")
+    g.add_argument("--reach", type=float, metavar="D",
+                   help="longest ray; misses count as D (default: bounding-box diagonal, or a quarter of it for occlusion)")
+    g.add_argument("--attenuation-distance", type=float, metavar="L",
+                   help="Beer-Lambert distance for transmittance, as glTF attenuationDistance (default: diagonal / 10)")
+    g.add_argument("--invert", action="store_const", const=True, help="store 1 - value (bright = thin)")
+    g.add_argument("--supersample", type=int, metavar="K", help="K x K surface samples per texel (default 1; cost x K²)")
+    g.add_argument("--pad", type=_pad, metavar="N|fill",
+                   help="seam padding in texels, or 'fill' for every empty texel (default max(2, size/256))")
+    g.add_argument("--bits", type=int, choices=(8, 16), help="PNG bit depth (default 16)")
+    g.add_argument("--seed", type=int, metavar="S", help="random seed; the same seed gives the same map (default 0)")
+    g.add_argument("--threads", type=int, metavar="N", help="worker threads (default: all cores)")
+    g.add_argument("--bias", type=float, metavar="B", help="inward start offset (default 1e-4 x bounding-box diagonal)")
+    g.add_argument("--sequence", choices=("sobol", "random"),
+                   help="direction sequence: scrambled Sobol with per-sample rotation (default) or independent random")
+    g.add_argument("--target-error", type=float, metavar="E",
+                   help="adaptive: stop adding rays to a sample once its standard error is at most E (measure units)")
+    g.add_argument("--chunk-rays", type=int, metavar="N",
+                   help="tuning: rays per work item of the thread pool (default 262144; bounds memory, no effect on the map)")
+    g.add_argument("--order", choices=("morton", "rows"),
+                   help="tuning: texel order within a work item, Z order (default) or rows; no effect on the map")
+
+
+def bake_options_from_args(args: argparse.Namespace) -> dict:
+    """The bake options the user gave, as a dict of BakeSettings fields."""
+    return {name: getattr(args, name) for name in BAKE_OPTION_NAMES if getattr(args, name, None) is not None}
+
+
+def settings_from_args(args: argparse.Namespace):
+    from thickbake.settings import BakeSettings
+
+    return BakeSettings.from_mapping(bake_options_from_args(args), where="command-line options")
