@@ -11,7 +11,7 @@ from thickbake.maps import padding
 
 from thickbake.pipeline import texels
 from thickbake.errors import ThickbakeError
-from thickbake.settings import BakeSettings, default_pad, parse_size
+from thickbake.settings import BakeSettings, RunOptions, default_pad, parse_size, settings_from_mapping
 
 
 def _rasterise_all(tri_uv, width, height, supersample=1):
@@ -142,8 +142,23 @@ def test_settings_validation_messages():
     s = BakeSettings().resolve(2.0)
     assert s.reach == 2.0 and s.bias == pytest.approx(2e-4) and s.pad == 4
     assert BakeSettings(measure="occlusion").resolve(2.0).reach == 0.5
-    assert BakeSettings(threads=1).content_hash() == BakeSettings(threads=2).content_hash()
     assert BakeSettings(seed=1).content_hash() != BakeSettings(seed=2).content_hash()
+
+
+def test_run_options_are_split_from_map_content():
+    content, run = settings_from_mapping({"size": 512, "threads": 2, "chunk_rays": 4096, "order": "rows"})
+    assert content == BakeSettings(size=512) and run == RunOptions(threads=2, chunk_rays=4096, order="rows")
+    with pytest.raises(ThickbakeError, match="threads"):
+        RunOptions(threads=0)
+    with pytest.raises(ThickbakeError, match="unknown setting 'threads'"):
+        BakeSettings.from_mapping({"threads": 2})
+    with pytest.raises(ThickbakeError, match="GiB"):  # the memory cap weighs both together
+        settings_from_mapping({"chunk_rays": 1 << 28})
+    # batch runs decide "up to date" by this hash, so its values must not move when fields are regrouped:
+    # the pins are the hashes thickbake computed while run options were still fields it dropped
+    assert BakeSettings().content_hash() == "92ee6943c1c394dd4337e016dad873cd0d899a77a69b1748149e61ab7ffa65b7"
+    assert (BakeSettings(size=(512, 256), measure="occlusion", seed=3).content_hash()
+            == "c6fdf1105ae847dbe5d2612e0d697b13fdfca8ca07c4ac1f2889000d5b4fbb5b")
 
 
 def test_engines_agree():

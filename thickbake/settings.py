@@ -1,7 +1,15 @@
-"""One validated settings object shared by the API, the command line and batch rules files.
+"""The validated settings shared by the API, the command line and batch rules files.
 
-:class:`BakeSettings` is built once (from keyword arguments, parsed options or a TOML table) and then
-passed down; no stage of the bake reads the command line or globals.  Every length is in *scene units*
+Two objects, built once (from keyword arguments, parsed options or a TOML table) and then passed down;
+no stage of the bake reads the command line or globals:
+
+* :class:`BakeSettings` — everything that decides the map's content.  It is hashed
+  (:meth:`BakeSettings.content_hash`, which batch runs use to tell whether a map is up to date) and
+  recorded in the sidecar under ``"settings"``.
+* :class:`RunOptions` — how the bake runs (threads, rays per work item, texel order).  They never
+  change a map, are not hashed, and are recorded under ``"run"``.
+
+:func:`settings_from_mapping` splits one flat mapping (a command line, a rules table) into the two.  Every length is in *scene units*
 (the units of the mesh's world-space coordinates, after node transforms).  Options that default to a
 size relative to the mesh (``reach``, ``bias``, ``attenuation_distance``) stay ``None`` here and are
 resolved against the mesh's bounding box by :meth:`BakeSettings.resolve`.
@@ -15,27 +23,19 @@ import json
 import math
 import os
 from dataclasses import dataclass, fields
-from typing import Any
+from typing import Any, Mapping
 
+from thickbake.constants import ATTENUATION_DIAGONAL_FRACTION, BIAS_DIAGONAL_FRACTION
 from thickbake.errors import ThickbakeError
+from thickbake.lobes import LOBES as _LOBE_OBJECTS
+from thickbake.measures import MEASURES as _MEASURE_OBJECTS, measure_named
 
-MEASURES = ("thickness", "transmittance", "occlusion")
-LOBES = ("cosine", "uniform")
+#: Names accepted for ``measure`` and ``lobe``: the registries of :mod:`thickbake.measures` and
+#: :mod:`thickbake.lobes` (a new measure or lobe is added there, not here).
+MEASURES = tuple(_MEASURE_OBJECTS)
+LOBES = tuple(_LOBE_OBJECTS)
 SEQUENCES = ("sobol", "random")
 ORDERS = ("morton", "rows")
-
-#: Default reach for ``thickness``/``transmittance``: the bounding-box diagonal, longer than any chord
-#: of the mesh, so no inward ray of a closed mesh is clipped.
-REACH_DIAGONAL_FRACTION = 1.0
-#: Default reach for ``occlusion``: a quarter of the bounding-box diagonal.  On a closed mesh every
-#: inward ray hits something, so the hit fraction only varies when the reach is shorter than the
-#: thick parts; a quarter of the diagonal separates thin features (ears, leaves, rims) from the body
-#: on typical props.  Common practice, no published source.
-OCCLUSION_REACH_DIAGONAL_FRACTION = 0.25
-#: Default inward origin offset as a fraction of the bounding-box diagonal.  float32 positions carry a
-#: relative rounding error of ~6e-8, so 1e-4 of the diagonal clears self-hits with three orders of
-#: magnitude to spare while staying far below any thickness worth baking.
-BIAS_DIAGONAL_FRACTION = 1e-4
 #: Refuse bakes whose maps would need more memory than this (estimated by :func:`estimate_bytes`).
 MEMORY_CAP_BYTES = 8 * 1024**3
 #: Largest accepted side of a map, in texels.
@@ -140,8 +140,6 @@ class BakeSettings:
         Bit depth of PNG output.
     seed : int
         Seed of every random stream; the same seed gives bit-identical maps.
-    threads : int or None
-        Worker threads; None → all cores.  Does not change the result.
     bias : float or None
         Inward origin offset in scene units; None → 1e-4 × bounding-box diagonal.
     sequence : {"sobol", "random"}
@@ -150,10 +148,6 @@ class BakeSettings:
     target_error : float or None
         Adaptive mode: stop adding rays to a sample once the standard error of its mean is at most
         this (measure units); ``rays`` is the cap.
-    chunk_rays : int
-        Rays held in memory per work item; bounds memory and sets the thread-pool grain.
-    order : {"morton", "rows"}
-        Order of texels within a work item (Z-order keeps neighbouring rays coherent).
     """
 
     size: tuple[int, int] = (1024, 1024)
@@ -168,12 +162,9 @@ class BakeSettings:
     pad: int | str | None = None
     bits: int = 16
     seed: int = 0
-    threads: int | None = None
     bias: float | None = None
     sequence: str = "sobol"
     target_error: float | None = None
-    chunk_rays: int = 1 << 18
-    order: str = "morton"
 
     def __post_init__(self):
         object.__setattr__(self, "size", parse_size(self.size))
@@ -195,33 +186,17 @@ class BakeSettings:
             raise _bad("bits", self.bits, "8 or 16")
         if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
             raise _bad("seed", self.seed, "a whole number ≥ 0")
-        if self.threads is not None:
-            _check_int(self, "threads", 1, 1024)
         if self.bias is not None:
             _check_float(self, "bias", 0.0, math.inf, inclusive_low=True)
         _check_choice(self, "sequence", SEQUENCES)
         _check_optional_positive(self, "target_error")
-        _check_int(self, "chunk_rays", 1024, 1 << 28)
-        _check_choice(self, "order", ORDERS)
-        est = estimate_bytes(*self.size, self.chunk_rays)
-        if est > MEMORY_CAP_BYTES:
-            raise ThickbakeError(
-                f"a {self.size[0]}x{self.size[1]} map needs about {est / 1024**3:.1f} GiB, over the "
-                f"{MEMORY_CAP_BYTES / 1024**3:.0f} GiB cap",
-                fix="bake a smaller size (4096x4096 needs about 1 GiB)",
-            )
+        check_memory(self, RunOptions())
 
     # ------------------------------------------------------------------ construction helpers
     @classmethod
-    def from_mapping(cls, values: dict[str, Any], where: str = "settings") -> "BakeSettings":
+    def from_mapping(cls, values: Mapping[str, Any], where: str = "settings") -> "BakeSettings":
         """Build from a mapping (TOML table, JSON, keyword arguments), naming unknown keys."""
-        names = {f.name for f in fields(cls)}
-        unknown = sorted(set(values) - names)
-        if unknown:
-            raise ThickbakeError(
-                f"unknown setting {', '.join(repr(k) for k in unknown)} in {where}",
-                fix=f"allowed settings: {', '.join(sorted(names))}",
-            )
+        _check_keys(values, _names(cls), where)
         return cls(**values)
 
     def replace(self, **changes) -> "BakeSettings":
@@ -241,17 +216,15 @@ class BakeSettings:
         if not (diagonal > 0 and math.isfinite(diagonal)):
             raise ThickbakeError("the mesh's bounding box is empty", fix="check the file has geometry")
         changes: dict[str, Any] = {}
+        measure = measure_named(self.measure)
         if self.reach is None:
-            frac = OCCLUSION_REACH_DIAGONAL_FRACTION if self.measure == "occlusion" else REACH_DIAGONAL_FRACTION
-            changes["reach"] = float(diagonal * frac)
+            changes["reach"] = float(diagonal * measure.reach_fraction)
         if self.bias is None:
             changes["bias"] = float(diagonal * BIAS_DIAGONAL_FRACTION)
-        if self.attenuation_distance is None and self.measure == "transmittance":
-            changes["attenuation_distance"] = float(diagonal * 0.1)
+        if self.attenuation_distance is None and measure.uses_attenuation:
+            changes["attenuation_distance"] = float(diagonal * ATTENUATION_DIAGONAL_FRACTION)
         if self.pad is None:
             changes["pad"] = default_pad(*self.size)
-        if self.threads is None:
-            changes["threads"] = usable_cores()
         return dataclasses.replace(self, **changes) if changes else self
 
     def to_dict(self) -> dict[str, Any]:
@@ -261,12 +234,102 @@ class BakeSettings:
         return out
 
     def content_hash(self) -> str:
-        """sha256 of the settings that decide the map's content (threads, chunking and order excluded)."""
-        data = self.to_dict()
-        for key in ("threads", "chunk_rays", "order"):
-            data.pop(key, None)
-        blob = json.dumps(data, sort_keys=True, separators=(",", ":")).encode()
+        """sha256 of every field (all of them decide the map's content), as compact sorted JSON.
+
+        Run options are not fields, so they cannot enter it; the value equals what earlier versions
+        computed with threads, chunking and order dropped, which keeps batch outputs up to date.
+        """
+        blob = json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":")).encode()
         return hashlib.sha256(blob).hexdigest()
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    """How a bake runs; none of it changes the map (every random stream derives from seed and texel).
+
+    Attributes
+    ----------
+    threads : int or None
+        Worker threads; None → every core this process may use (:meth:`resolve`).
+    chunk_rays : int
+        Rays held in memory per work item; bounds memory and sets the thread-pool grain.
+    order : {"morton", "rows"}
+        Order of texels within a work item (Z-order keeps neighbouring rays coherent).
+    """
+
+    threads: int | None = None
+    chunk_rays: int = 1 << 18
+    order: str = "morton"
+
+    def __post_init__(self):
+        if self.threads is not None:
+            _check_int(self, "threads", 1, 1024)
+        _check_int(self, "chunk_rays", 1024, 1 << 28)
+        _check_choice(self, "order", ORDERS)
+
+    @classmethod
+    def from_mapping(cls, values: Mapping[str, Any], where: str = "run options") -> "RunOptions":
+        """Build from a mapping, naming unknown keys."""
+        _check_keys(values, _names(cls), where)
+        return cls(**values)
+
+    def replace(self, **changes) -> "RunOptions":
+        """A copy with some fields changed (validated again)."""
+        return dataclasses.replace(self, **changes)
+
+    def resolve(self) -> "RunOptions":
+        """Fill ``threads`` with the usable cores when it is None."""
+        return dataclasses.replace(self, threads=usable_cores()) if self.threads is None else self
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able dict of every field."""
+        return dataclasses.asdict(self)
+
+
+def _names(cls) -> tuple[str, ...]:
+    return tuple(f.name for f in fields(cls))
+
+
+#: Keys of a flat mapping of options: map content first, then run options.
+CONTENT_KEYS = _names(BakeSettings)
+RUN_KEYS = _names(RunOptions)
+OPTION_KEYS = CONTENT_KEYS + RUN_KEYS
+
+
+def split_options(values: Mapping[str, Any], where: str = "settings") -> tuple[dict[str, Any], dict[str, Any]]:
+    """Split one flat mapping into (map content, run options) keyword dicts, naming unknown keys."""
+    _check_keys(values, OPTION_KEYS, where)
+    content = {k: v for k, v in values.items() if k in CONTENT_KEYS}
+    run = {k: v for k, v in values.items() if k in RUN_KEYS}
+    return content, run
+
+
+def settings_from_mapping(values: Mapping[str, Any], where: str = "settings") -> tuple[BakeSettings, RunOptions]:
+    """Validated (BakeSettings, RunOptions) from one flat mapping (command line, rules table, keywords)."""
+    content, run = split_options(values, where)
+    settings, options = BakeSettings(**content), RunOptions(**run)
+    check_memory(settings, options)
+    return settings, options
+
+
+def check_memory(settings: BakeSettings, run: RunOptions) -> None:
+    """Refuse a bake whose estimated peak memory (:func:`estimate_bytes`) is over the cap."""
+    est = estimate_bytes(*settings.size, run.chunk_rays)
+    if est > MEMORY_CAP_BYTES:
+        raise ThickbakeError(
+            f"a {settings.size[0]}x{settings.size[1]} map needs about {est / 1024**3:.1f} GiB, over the "
+            f"{MEMORY_CAP_BYTES / 1024**3:.0f} GiB cap",
+            fix="bake a smaller size (4096x4096 needs about 1 GiB)",
+        )
+
+
+def _check_keys(values: Mapping[str, Any], allowed: tuple[str, ...], where: str) -> None:
+    unknown = sorted(set(values) - set(allowed))
+    if unknown:
+        raise ThickbakeError(
+            f"unknown setting {', '.join(repr(k) for k in unknown)} in {where}",
+            fix=f"allowed settings: {', '.join(sorted(allowed))}",
+        )
 
 
 def _bad(name: str, value: Any, allowed: str) -> ThickbakeError:
@@ -303,4 +366,6 @@ def _check_optional_positive(obj, name: str) -> None:
     object.__setattr__(obj, name, float(value))
 
 
-__all__ = ["BakeSettings", "MEASURES", "LOBES", "SEQUENCES", "ORDERS", "default_pad", "parse_size", "estimate_bytes"]
+__all__ = ["BakeSettings", "RunOptions", "settings_from_mapping", "split_options", "check_memory", "MEASURES", "LOBES",
+           "SEQUENCES", "ORDERS", "CONTENT_KEYS", "RUN_KEYS", "OPTION_KEYS", "default_pad", "parse_size",
+           "estimate_bytes"]

@@ -94,7 +94,7 @@ from thickbake.version import __version__
 from thickbake.errors import ThickbakeError
 from thickbake.batch.rules import FORMATS, AssetOptions, RulesFile, find_rules_file, load_rules
 from thickbake.batch.runners import ClusterRunner, LocalRunner, WorkerDied, available_cores, bake_asset
-from thickbake.settings import BakeSettings
+from thickbake.settings import BakeSettings, settings_from_mapping
 
 #: Mesh files a batch picks up (matched case-insensitively).
 BATCH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply")
@@ -258,7 +258,7 @@ def plan_batch(src, out, config=None, force: bool = False) -> BatchPlan:
     jobs = []
     for rel in rels:
         options = rules.options_for(rel)
-        settings = BakeSettings.from_mapping(options.settings)
+        settings, _ = settings_from_mapping(options.settings)
         jobs.append(AssetJob(rel=rel, source=src_abs / rel, map_rel=map_name(rel, options.format, settings.measure),
                              options=options,
                              requested_hash=settings.content_hash(), cost=_bake_cost(settings)))
@@ -631,7 +631,8 @@ def format_plan(plan: BatchPlan) -> list[str]:
                          + f": {job.error}")
         else:
             lines.append(f"{job.rel} -> {job.map_rel}: {action} ({job.reason})")
-        settings = BakeSettings.from_mapping(job.options.settings).to_dict()
+        content, run = settings_from_mapping(job.options.settings)
+        settings = {**content.to_dict(), **run.to_dict()}
         shown = " ".join(f"{k}={_setting_text(k, v)}" for k, v in settings.items())
         rules = ", ".join(f"#{n}" for n in job.options.rules) or "none"
         lines.append(f"    format={job.options.format} {shown}  [rules: {rules}]")

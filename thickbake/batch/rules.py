@@ -16,8 +16,9 @@ A rules file (``SRC/thickbake.toml`` by default) looks like this::
     rays = 16
 
 Every key other than ``match`` and ``format`` is a :class:`~thickbake.settings.BakeSettings` field
-(``size``, ``rays``, ``cone``, ``lobe``, ``measure``, ``reach``, ...), validated exactly as the API and
-the command line validate them.  Globs are matched against the whole relative path, case-sensitively:
+(``size``, ``rays``, ``cone``, ``lobe``, ``measure``, ``reach``, ...) or a
+:class:`~thickbake.settings.RunOptions` field (``threads``, ``chunk_rays``, ``order``), validated
+exactly as the API and the command line validate them.  Globs are matched against the whole relative path, case-sensitively:
 ``*`` and ``?`` stay inside one folder name, ``[abc]``/``[!abc]`` match one character, and a path
 part that is exactly ``**`` matches any number of folders, including none (``**/leaf.obj`` matches
 ``leaf.obj`` and ``garden/beds/leaf.obj``; ``garden/**`` matches everything below ``garden``).
@@ -31,11 +32,11 @@ from __future__ import annotations
 import difflib
 import os
 import re
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from pathlib import Path
 
 from thickbake.errors import ThickbakeError
-from thickbake.settings import BakeSettings
+from thickbake.settings import OPTION_KEYS, settings_from_mapping
 
 #: Name of the rules file looked for in the source folder when ``--config`` is not given.
 DEFAULT_RULES_NAME = "thickbake.toml"
@@ -43,7 +44,8 @@ DEFAULT_RULES_NAME = "thickbake.toml"
 FORMATS = {"png": ".png", "tif": ".tif"}
 #: Keys of the rules file that are not bake settings.
 OUTPUT_KEYS = ("format",)
-SETTING_KEYS = tuple(f.name for f in fields(BakeSettings))
+#: Bake settings and run options (threads, chunk_rays, order) a table may set.
+SETTING_KEYS = OPTION_KEYS
 TOP_LEVEL_KEYS = ("defaults", "rule")
 
 
@@ -115,7 +117,7 @@ class RulesFile:
                 used.append(rule.number)
         fmt = merged.pop("format", "png")
         try:
-            BakeSettings.from_mapping(merged, where=self._where())
+            settings_from_mapping(merged, where=self._where())
         except ThickbakeError as exc:
             tables = "[defaults]" + "".join(f", rule #{n}" for n in used)
             raise ThickbakeError(f"settings for {rel_path} (from {tables}): {exc.message}",
@@ -286,11 +288,11 @@ def _check_table(table: dict, path: Path, lines: "_KeyLines", section, where: st
                                      fix=f"use {' or '.join(repr(f) for f in FORMATS)}")
         elif key in SETTING_KEYS:
             try:
-                BakeSettings.from_mapping({key: value}, where=str(path))
+                settings_from_mapping({key: value}, where=str(path))
             except ThickbakeError as exc:
                 raise ThickbakeError(f"{_at(line)}{where}: {exc.message}", path=path, fix=exc.fix) from None
     try:  # combinations (e.g. a size too large for the memory cap)
-        BakeSettings.from_mapping({k: v for k, v in table.items() if k in SETTING_KEYS}, where=str(path))
+        settings_from_mapping({k: v for k, v in table.items() if k in SETTING_KEYS}, where=str(path))
     except ThickbakeError as exc:
         line = lines.header(section[1]) if section[0] == "rule" else lines.find(None, "defaults")
         raise ThickbakeError(f"{_at(line)}{where}: {exc.message}", path=path, fix=exc.fix) from None

@@ -26,7 +26,7 @@ from typing import Callable
 
 from thickbake.errors import ThickbakeError
 from thickbake.batch.rules import FORMATS
-from thickbake.settings import BakeSettings, usable_cores
+from thickbake.settings import settings_from_mapping, usable_cores
 
 #: Modules the fork server imports once, so that pool processes start without importing them.
 _POOL_PRELOAD = ["thickbake.batch.runners", "thickbake.batch.plan", "thickbake.pipeline.driver",
@@ -48,7 +48,7 @@ def bake_asset(task: dict) -> dict:
     ----------
     task : dict
         ``source`` (absolute mesh path), ``map_name`` (file name of the map, for the sidecar),
-        ``format`` (``"png"`` or ``"tif"``), ``settings`` (BakeSettings fields as given),
+        ``format`` (``"png"`` or ``"tif"``), ``settings`` (BakeSettings and RunOptions fields as given),
         ``threads`` (int or None: all cores of this machine over the tasks it runs at once) and
         ``batch`` (dict recorded in the sidecar under ``"batch"``).
 
@@ -88,18 +88,18 @@ def _bake_asset(task: dict) -> dict:
     from thickbake.pipeline.load import load_asset
     from thickbake.batch.report import thumbnail_png
 
-    settings = BakeSettings.from_mapping(task["settings"], where=task["source"])
-    if settings.threads is None:
-        settings = settings.replace(threads=task.get("threads") or _threads_here())
+    settings, run = settings_from_mapping(task["settings"], where=task["source"])
+    if run.threads is None:
+        run = run.replace(threads=task.get("threads") or _threads_here())
     asset = load_asset(task["source"])
-    result = bake(asset, settings)
+    result = bake(asset, settings, run)
     suffix = FORMATS[task["format"]]
     assert Path(task["map_name"]).suffix.lower() == suffix
     image = result.image(suffix)
     data, sidecar = result.encode(task["map_name"], image)
     sidecar["batch"] = dict(task["batch"], map_sha256=hashlib.sha256(data).hexdigest())
     return {"map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
-            "threads": settings.threads, "warnings": list(asset.report.warnings) + list(result.info["warnings"])}
+            "threads": run.threads, "warnings": list(asset.report.warnings) + list(result.info["warnings"])}
 
 
 def _threads_here() -> int:

@@ -44,6 +44,7 @@ from pathlib import Path
 import numpy as np
 
 from thickbake.errors import ThickbakeError
+from thickbake.measures import measure_named
 
 #: Colour of A < B (blue) and A > B (red) at full saturation, and of texels empty in both maps.
 COLOUR_A_BELOW = np.array([33, 102, 172], np.float64)
@@ -160,7 +161,7 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
     except (KeyError, TypeError, ValueError):
         raise ThickbakeError("the sidecar's encoding lacks offset or scale", path=path.with_suffix(".json"),
                              fix="bake the map again") from None
-    full_scale = float(reach) if (measure == "thickness" and reach) else 1.0
+    full_scale = measure_named(measure).full_scale(reach) if reach else 1.0
     if code_max is None:
         if image.dtype.kind != "f":
             raise ThickbakeError(f"the sidecar describes a float map but the image holds {image.dtype} codes",
@@ -278,7 +279,7 @@ def difference_image_bytes(comparison: Comparison) -> bytes:
     canvas = np.empty((h + LEGEND_HEIGHT, width, 3), np.uint8)
     canvas[:] = COLOUR_EMPTY
     canvas[:h, :w] = rgb
-    units = "scene units" if comparison.a.measure == "thickness" else ""
+    units = measure_named(comparison.a.measure).unit_label
     canvas[h:] = _legend_strip(width, limit, units)
     buffer = io.BytesIO()
     Image.fromarray(canvas).save(buffer, format="PNG")
@@ -295,7 +296,8 @@ def _describe(m: DecodedMap) -> str:
 
 def format_report(c: Comparison, max_share: float) -> list[str]:
     """Lines of the plain-text report."""
-    units = " scene units" if c.a.measure == "thickness" else ""
+    label = measure_named(c.a.measure).unit_label
+    units = f" {label}" if label else ""
     h, w = c.a.values.shape
     total = h * w
     psnr = "inf (identical)" if math.isinf(c.psnr) else f"{c.psnr:.2f} dB"

@@ -58,6 +58,8 @@ import math
 import numpy as np
 
 from thickbake.checks.shapes import _g1, _g2  # the same cancellation-free forms as the cone closed forms
+from thickbake.lobes import lobe_named
+from thickbake.measures import Measure, measure_named
 
 #: Family-wise false-alarm rate of the per-texel "every texel" criterion.
 FAMILY_ALPHA = 1e-3
@@ -71,6 +73,9 @@ CAUCHY_BUDGET = 0.01
 #: half an ulp each; 8 ulps (2⁻²⁴ relative each) of the scene's bounding-box diagonal bounds them.
 FLOAT32_ULPS = 8
 FLOAT32_EPS = 2.0 ** -24
+#: Cone half-angles (radians) at or below this are treated as a single ray along the normal: the closed
+#: forms divide by sin²α and 1 − cos α, which lose all precision there.
+SPHERE_CONE_ZERO_RAD = 1e-7
 #: Midpoint-rule nodes for lobe averages of error bounds (our own bounds, not an external check).
 LOBE_NODES = 1 << 14
 
@@ -100,31 +105,20 @@ def bonferroni_k(texels: int, dof: int, alpha: float = FAMILY_ALPHA) -> float:
 
 
 # ---------------------------------------------------------------------------- measures
-def measure_value(chord, measure: str, reach: float, attenuation_distance: float | None):
-    """The bake's per-ray value g(ℓ) of a hit at distance ℓ (scene units): :func:`thickbake.measures.ray_values`."""
-    from thickbake.pipeline.measures import ray_values
-
+def measure_value(chord, measure: str | Measure, reach: float, attenuation_distance: float | None):
+    """The bake's per-ray value g(ℓ) of a hit at distance ℓ (scene units): :meth:`Measure.ray_values`."""
     chord = np.asarray(chord, np.float64)
-    return ray_values(chord, chord < reach, measure, reach, attenuation_distance)
+    return measure_named(measure).ray_values(chord, chord < reach, reach, attenuation_distance)
 
 
-def measure_modulus(chord, error, measure: str, reach: float, attenuation_distance: float | None):
+def measure_modulus(chord, error, measure: str | Measure, reach: float, attenuation_distance: float | None):
     """sup |g(ℓ + Δ) − g(ℓ)| over |Δ| ≤ error: how far a chord error of ``error`` moves the measure.
 
     thickness: ``error`` (min(·, ρ) is 1-Lipschitz); transmittance: error/L · e^(−(min(ℓ, ρ) − error)/L)
     (the largest slope of exp(−d/L) on the interval); occlusion: 1 when ℓ is within ``error`` of the
-    reach (the hit/miss decision can flip), else 0.
+    reach (the hit/miss decision can flip), else 0.  See :meth:`Measure.value_change_bound`.
     """
-    chord = np.asarray(chord, np.float64)
-    error = np.asarray(error, np.float64)
-    if measure == "thickness":
-        return error + 0.0 * chord
-    if measure == "transmittance":
-        low = np.maximum(np.minimum(chord, reach) - error, 0.0)
-        return error / attenuation_distance * np.exp(-low / attenuation_distance)
-    if measure == "occlusion":
-        return (np.abs(chord - reach) <= error).astype(np.float64)
-    raise ValueError(f"unknown measure {measure!r}")
+    return measure_named(measure).value_change_bound(chord, error, reach, attenuation_distance)
 
 
 # ---------------------------------------------------------------------------- sphere closed forms
@@ -156,32 +150,46 @@ def sphere_cone_expected(radius: float, cone_rad: float, lobe: str, measure: str
     2.696257825099
     """
     R, rho = float(radius), float(reach)
-    if cone_rad <= 1e-7:
-        return float(measure_value(2 * R, measure, rho, attenuation_distance))
+    m, cosine = measure_named(measure), lobe_named(lobe).cosine_power == 1
+    if cone_rad <= SPHERE_CONE_ZERO_RAD:
+        return float(measure_value(2 * R, m, rho, attenuation_distance))
     c = math.cos(cone_rad)
     one_minus_c = 2.0 * math.sin(cone_rad / 2.0) ** 2
     sin2 = math.sin(cone_rad) ** 2
     x0 = min(max(rho / (2.0 * R), c), 1.0)
     one_minus_x0 = 1.0 - x0 if x0 < 1.0 else 0.0
     width = max(one_minus_c - one_minus_x0, 0.0)  # W = x0 − c
-    if measure == "thickness":
-        if lobe == "cosine":
-            return (4.0 * R * width * (x0 * x0 + x0 * c + c * c) / 3.0 + rho * one_minus_x0 * (1.0 + x0)) / sin2
-        return (R * width * (x0 + c) + rho * one_minus_x0) / one_minus_c
-    if measure == "transmittance":
-        L = float(attenuation_distance)
-        tau = 2.0 * R / L
-        head = math.exp(-tau * c)
-        tail = math.exp(-rho / L)
-        if lobe == "cosine":
-            part = 2.0 * head * (c * width * float(_g1(tau * width)) + width * width * float(_g2(tau * width)))
-            return (part + tail * one_minus_x0 * (1.0 + x0)) / sin2
-        return (head * width * float(_g1(tau * width)) + tail * one_minus_x0) / one_minus_c
-    if measure == "occlusion":
-        if lobe == "cosine":
-            return width * (x0 + c) / sin2
-        return width / one_minus_c
-    raise ValueError(f"unknown measure {measure!r}")
+    return _SPHERE_CONE_FORMS[m.name](R, rho, attenuation_distance, cosine, c, one_minus_c, sin2, x0, one_minus_x0,
+                                      width)
+
+
+def _sphere_thickness(R, rho, L, cosine, c, one_minus_c, sin2, x0, one_minus_x0, width) -> float:
+    if cosine:
+        return (4.0 * R * width * (x0 * x0 + x0 * c + c * c) / 3.0 + rho * one_minus_x0 * (1.0 + x0)) / sin2
+    return (R * width * (x0 + c) + rho * one_minus_x0) / one_minus_c
+
+
+def _sphere_transmittance(R, rho, L, cosine, c, one_minus_c, sin2, x0, one_minus_x0, width) -> float:
+    L = float(L)
+    tau = 2.0 * R / L
+    head = math.exp(-tau * c)
+    tail = math.exp(-rho / L)
+    if cosine:
+        part = 2.0 * head * (c * width * float(_g1(tau * width)) + width * width * float(_g2(tau * width)))
+        return (part + tail * one_minus_x0 * (1.0 + x0)) / sin2
+    return (head * width * float(_g1(tau * width)) + tail * one_minus_x0) / one_minus_c
+
+
+def _sphere_occlusion(R, rho, L, cosine, c, one_minus_c, sin2, x0, one_minus_x0, width) -> float:
+    if cosine:
+        return width * (x0 + c) / sin2
+    return width / one_minus_c
+
+
+#: The closed form of each measure over a sphere (module docstring); a new measure needs its own here
+#: before ``verify`` can check it.
+_SPHERE_CONE_FORMS = {"thickness": _sphere_thickness, "transmittance": _sphere_transmittance,
+                      "occlusion": _sphere_occlusion}
 
 
 def _lobe_nodes(cone_rad: float, lobe: str):
@@ -189,7 +197,7 @@ def _lobe_nodes(cone_rad: float, lobe: str):
     c = math.cos(cone_rad)
     edges = np.linspace(c, 1.0, LOBE_NODES + 1)
     x = 0.5 * (edges[:-1] + edges[1:])
-    weight = x.copy() if lobe == "cosine" else np.ones_like(x)
+    weight = lobe_named(lobe).polar_weight(x)
     return x, weight / weight.sum()
 
 
@@ -204,7 +212,7 @@ def sphere_ray_error(x, radius: float, facet: float, bias: float):
 def sphere_systematic_bound(radius: float, cone_rad: float, lobe: str, measure: str, reach: float,
                             attenuation_distance: float | None, facet: float, bias: float) -> float:
     """Lobe average of the measure's modulus over e(x): a texel's facet + bias bound (measure units)."""
-    if cone_rad <= 1e-7:
+    if cone_rad <= SPHERE_CONE_ZERO_RAD:
         return float(measure_modulus(2 * radius, sphere_ray_error(1.0, radius, facet, 0.0), measure, reach,
                                      attenuation_distance))
     x, w = _lobe_nodes(cone_rad, lobe)
@@ -212,13 +220,9 @@ def sphere_systematic_bound(radius: float, cone_rad: float, lobe: str, measure: 
     return float((measure_modulus(2 * radius * x, e, measure, reach, attenuation_distance) * w).sum())
 
 
-def measure_lipschitz(measure: str, attenuation_distance: float | None) -> float | None:
-    """Largest slope of g(ℓ) (per scene unit), None for occlusion (a step)."""
-    if measure == "thickness":
-        return 1.0
-    if measure == "transmittance":
-        return 1.0 / attenuation_distance
-    return None
+def measure_lipschitz(measure: str | Measure, attenuation_distance: float | None) -> float | None:
+    """Largest slope of g(ℓ) (per scene unit), None for occlusion (a step): :meth:`Measure.lipschitz`."""
+    return measure_named(measure).lipschitz(attenuation_distance)
 
 
 # ---------------------------------------------------------------------------- Cauchy row

@@ -206,7 +206,7 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
     Points are uniform by area (face chosen by area, uniform barycentrics), directions cosine-weighted
     about the inward *geometric* normal, origins placed as the bake places them: ``bias`` (default
     10⁻⁴ × diagonal, the bake's default) inside, kept off triangle edges, and closer where the solid
-    is thinner than that (:func:`thickbake.trace.inward_origins`).
+    is thinner than that (:func:`thickbake.pipeline.origins.inward_origins`).
 
     Parameters
     ----------
@@ -219,7 +219,7 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
     """
     from thickbake.pipeline.directions import ray_directions
     from thickbake.pipeline.texels import EDGE_MARGIN_BIASES, keep_off_edges
-    from thickbake.pipeline.trace import inward_origins
+    from thickbake.pipeline.origins import inward_origins
 
     rng = np.random.default_rng(seed)
     tri = asset.trace_vertices[asset.trace_faces]

@@ -74,6 +74,7 @@ from dataclasses import asdict, dataclass, field, replace
 import numpy as np
 
 from thickbake.errors import ThickbakeError
+from thickbake.measures import measure_named
 
 #: Options of ``thickbake verify`` when the user gives none: small enough for a two-core machine to
 #: check every shape in well under two minutes, large enough for thousands of texels per shape.
@@ -198,11 +199,12 @@ def _json_safe(obj):
 
 # ---------------------------------------------------------------------------- shared helpers
 def _settings(options: dict | None, where: str):
-    from thickbake.settings import BakeSettings
+    """(BakeSettings, RunOptions) from the user's options over :data:`VERIFY_DEFAULTS`."""
+    from thickbake.settings import settings_from_mapping
 
     merged = dict(VERIFY_DEFAULTS)
     merged.update(options or {})
-    return BakeSettings.from_mapping(merged, where=where)
+    return settings_from_mapping(merged, where=where)
 
 
 def _decoded(result) -> np.ndarray:
@@ -236,8 +238,9 @@ def _dof(settings) -> int:
 
 
 def _settings_line(s) -> str:
-    units = " (scene units)" if s.measure == "thickness" else ""
-    extra = f", attenuation distance {s.attenuation_distance:g}" if s.measure == "transmittance" else ""
+    measure = measure_named(s.measure)
+    units = f" ({measure.unit_label})" if measure.unit_label else ""
+    extra = f", attenuation distance {s.attenuation_distance:g}" if measure.uses_attenuation else ""
     return (f"{s.width}x{s.height} texels, {s.rays} rays{' (cap, adaptive)' if s.target_error else ''}, "
             f"cone {s.cone:g}°, {s.lobe} lobe, {s.measure}{units}{extra}, {s.sequence} directions, "
             f"supersample {s.supersample}, {s.bits}-bit codes")
@@ -458,7 +461,7 @@ def verify_shapes(options: dict | None = None, names: str | None = None) -> Veri
     Parameters
     ----------
     options : dict, optional
-        BakeSettings fields; missing ones take :data:`VERIFY_DEFAULTS`, then the bake defaults.
+        BakeSettings and RunOptions fields; missing ones take :data:`VERIFY_DEFAULTS`, then the bake defaults.
     names : str, optional
         Comma-separated subset of shapes.
 
@@ -470,7 +473,7 @@ def verify_shapes(options: dict | None = None, names: str | None = None) -> Veri
     from thickbake.pipeline.load import load_asset
 
     start = time.perf_counter()
-    settings = _settings(options, "verify options")
+    settings, run = _settings(options, "verify options")
     shapes = _select_shapes(names)
     checks = []
     resolved = None
@@ -480,10 +483,10 @@ def verify_shapes(options: dict | None = None, names: str | None = None) -> Veri
         resolved = resolved or s
         result = None
         if shape.name == "sphere":
-            result = bake(asset, settings)
+            result = bake(asset, settings, run)
             checks.append(_sphere_row(shape, asset, result))
         elif settings.cone == 0:
-            result = bake(asset, settings)
+            result = bake(asset, settings, run)
             checks.append(_normal_row(shape, asset, result))
         else:
             checks.append(Check(shape.name, "per texel, along the normal", SKIP,
@@ -495,7 +498,7 @@ def verify_shapes(options: dict | None = None, names: str | None = None) -> Veri
             continue
         if result is None or not _is_flat(asset):
             flat = _flat_shaded(asset)
-            result = bake(flat, settings)
+            result = bake(flat, settings, run)
         else:
             flat = asset
         checks.append(_mean_chord_row(shape.name, flat, result, float(shape.cauchy_mean_chord), capped=True))
@@ -516,7 +519,8 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     ----------
     source : str, os.PathLike, trimesh.Trimesh or trimesh.Scene
     options : dict, optional
-        BakeSettings fields; size, rays, seed, supersample, bias, sequence, bits and threads apply;
+        BakeSettings and RunOptions fields; size, rays, seed, supersample, bias, sequence, bits and the run
+        options apply;
         the mean-chord bake overrides cone, lobe, measure, reach and invert.
     """
     from thickbake.pipeline.driver import bake
@@ -528,7 +532,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     asset = load_asset(source)
     name = asset.name
     rep = asset.report
-    user = _settings(options, "verify options")
+    user, run = _settings(options, "verify options")
     overridden = [k for k in ("cone", "lobe", "measure", "reach", "invert", "attenuation_distance")
                   if options and k in options]
     settings = user.replace(cone=90.0, lobe="cosine", measure="thickness", reach=None, invert=False,
@@ -595,7 +599,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
 
     # the bake for UV figures and the mean chord
     flat = _flat_shaded(asset)
-    result = bake(flat, settings, engine=engine)
+    result = bake(flat, settings, run, engine=engine)
     s = result.settings
     info = result.info
     cov_note = f"{info['coverage']:.1%} of the {s.width}x{s.height} texels are covered"

@@ -41,14 +41,14 @@ def run(args) -> int:
     from thickbake.pipeline.load import load_asset
     from thickbake.cli.progress import ProgressBar
 
-    settings = settings_from_args(args)
+    settings, run_options = settings_from_args(args)
     output = args.output or default_output(args.mesh, settings.measure)
     check_output_path(output, args.error_out)
     asset = load_asset(args.mesh)
     print_warnings(asset.report.warnings, args.mesh)
     bar = ProgressBar(f"baking {os.path.basename(args.mesh)}", enabled=False if args.quiet else None)
     try:
-        result = bake(asset, settings, progress=bar)
+        result = bake(asset, settings, run_options, progress=bar)
     finally:
         bar.close()
     result.write(output, error_out=args.error_out)
@@ -57,7 +57,7 @@ def run(args) -> int:
         echo(summary_line(result, args.mesh, output))
     if args.verbose:
         info = result.info
-        verbose_lines([f"settings: {_settings_text(info['settings'])}",
+        verbose_lines([f"settings: {_settings_text(info['settings'])}", f"run: {_settings_text(info['run'])}",
                        f"timing: setup {info['timing']['setup_seconds']:.3f} s, trace {info['timing']['trace_seconds']:.3f} s, "
                        f"total {info['seconds']:.3f} s on engine {info['engine']}"])
     return EXIT_OK
@@ -71,7 +71,10 @@ def summary_line(result, source: str, out: str) -> str:
     """The one line a bake prints on stdout."""
     info = result.info
     w, h = info["size"]
-    units = " scene units" if info["measure"] == "thickness" else ""
+    from thickbake.measures import measure_named
+
+    label = measure_named(info["measure"]).unit_label
+    units = f" {label}" if label else ""
     st = info["stats"]
     extra = ""
     if info["overlap"] > 0:

@@ -1,4 +1,5 @@
-"""Command-line options that become :class:`~thickbake.settings.BakeSettings` fields.
+"""Command-line options that become :class:`~thickbake.settings.BakeSettings` and
+:class:`~thickbake.settings.RunOptions` fields.
 
 Every bake option defaults to None ("not given"), so a command can merge the options a user typed
 over its own defaults or a rules file's.  Parsing happens here once; the library only ever sees the
@@ -35,7 +36,7 @@ def _pad(text):
 
 BAKE_OPTION_NAMES = ("size", "rays", "cone", "lobe", "measure", "reach", "attenuation_distance", "invert",
                      "supersample", "pad", "bits", "seed", "threads", "bias", "sequence", "target_error",
-                     "chunk_rays", "order")
+                     "chunk_rays", "order")  # map content and run options (thickbake.settings.OPTION_KEYS)
 
 
 def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024", rays_default: str = "64") -> None:
@@ -44,14 +45,17 @@ def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024"
     ``size_default``/``rays_default`` are only the help text: commands such as verify that bake with
     their own defaults say so.
     """
+    from thickbake.lobes import LOBES
+    from thickbake.measures import MEASURES
+
     g = parser.add_argument_group("bake options (lengths in scene units)")
     g.add_argument("--size", type=_size, metavar="N|WxH", help=f"map size in texels (default {size_default}; e.g. 2048x1024)")
     g.add_argument("--rays", type=int, metavar="N",
                    help=f"rays per surface sample (default {rays_default}; the cap with --target-error)")
     g.add_argument("--cone", type=float, metavar="DEG",
                    help="half-angle of the cone around the inward normal: 0 = straight in (one ray), 90 = hemisphere (default 90)")
-    g.add_argument("--lobe", choices=("cosine", "uniform"), help="direction density in the cone (default cosine)")
-    g.add_argument("--measure", choices=("thickness", "transmittance", "occlusion"),
+    g.add_argument("--lobe", choices=tuple(LOBES), help="direction density in the cone (default cosine)")
+    g.add_argument("--measure", choices=tuple(MEASURES),
                    help="thickness: mean chord in scene units (default); transmittance: mean exp(-d/L); "
                         "occlusion: fraction of rays hitting within --reach")
     g.add_argument("--reach", type=float, metavar="D",
@@ -77,11 +81,12 @@ def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024"
 
 
 def bake_options_from_args(args: argparse.Namespace) -> dict:
-    """The bake options the user gave, as a dict of BakeSettings fields."""
+    """The bake options the user gave, as a flat dict of BakeSettings and RunOptions fields."""
     return {name: getattr(args, name) for name in BAKE_OPTION_NAMES if getattr(args, name, None) is not None}
 
 
 def settings_from_args(args: argparse.Namespace):
-    from thickbake.settings import BakeSettings
+    """(BakeSettings, RunOptions) of the options the user gave, validated once."""
+    from thickbake.settings import settings_from_mapping
 
-    return BakeSettings.from_mapping(bake_options_from_args(args), where="command-line options")
+    return settings_from_mapping(bake_options_from_args(args), where="command-line options")

@@ -1,19 +1,8 @@
 """Directions stage: ray directions around the inward normal, low-discrepancy and reproducible.
 
-Samplers come as a trio: :func:`sample_lobe` maps uniform variates ``u ∈ [0, 1)²`` to unit vectors in
-a local frame whose +z axis is the lobe axis, :func:`lobe_pdf` is their density over solid angle and
-:func:`lobe_inverse` maps directions back to ``u``.
-
-Lobes, for a cone of half-angle α around +z (c = cos α), with φ = 2π·u₂:
-
-* ``uniform`` over the cone's solid angle 2π(1 − c): cosθ = 1 − u₁(1 − c); pdf = 1 / (2π(1 − c)).
-* ``cosine`` (pdf ∝ cosθ): sin²θ = u₁·sin²α, i.e. Malley's method — points uniform on the disk of
-  radius sin α projected up to the hemisphere; pdf = cosθ / (π sin²α).  With α = 90° this is the
-  cosine-weighted hemisphere, pdf = cosθ/π (Pharr, Jakob & Humphreys, *Physically Based Rendering*,
-  4th ed., sampling appendix, "cosine-weighted hemisphere sampling" — from memory).
-
-The polar form (r = √u₁, φ = 2πu₂) is used rather than the concentric disk map: it keeps u₁ a
-function of θ alone, so a 1-D stratification of u₁ stratifies the polar angle exactly.
+The lobes themselves (cosine-weighted, uniform; each a sample/pdf/inverse trio) live in
+:mod:`thickbake.lobes`; this module draws their variates reproducibly and turns them into world-space
+ray directions around each sample's inward normal.
 
 Reproducibility
 ---------------
@@ -31,6 +20,8 @@ import functools
 import math
 
 import numpy as np
+
+from thickbake.lobes import Lobe, lobe_named
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _M1 = np.uint64(0xBF58476D1CE4E5B9)
@@ -116,31 +107,13 @@ def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequenc
     return u[:, 0].reshape(len(keys), k).copy(), u[:, 1].reshape(len(keys), k).copy()
 
 
-def lobe_cos_sin(u1: np.ndarray, cone_deg: float, lobe: str):
+def lobe_cos_sin(u1: np.ndarray, cone_deg: float, lobe: str | Lobe):
     """cosθ and sinθ (same shape and dtype as ``u1``) of the polar angle drawn from variate u1."""
-    alpha = math.radians(cone_deg)
-    dtype = u1.dtype.type
-    if lobe == "cosine":
-        sin2 = u1 * dtype(math.sin(alpha) ** 2)
-        cos_t = np.sqrt(np.maximum(1 - sin2, 0))
-    elif lobe == "uniform":
-        cos_t = 1 - u1 * dtype(1 - math.cos(alpha))
-        sin2 = np.maximum(1 - cos_t * cos_t, 0)
-    else:
-        raise ValueError(f"unknown lobe {lobe!r}")
-    return cos_t, np.sqrt(sin2)
+    return lobe_named(lobe).cos_sin(u1, cone_deg)
 
 
-def sample_lobe(u: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
-    """Map (…, 2) variates to (…, 3) unit directions in the local frame (+z = lobe axis).
-
-    Parameters
-    ----------
-    u : (..., 2) float
-        Uniform variates in [0, 1).
-    cone_deg : float
-        Cone half-angle α in degrees, 0 … 90.
-    lobe : {"cosine", "uniform"}
+def sample_lobe(u: np.ndarray, cone_deg: float, lobe: str | Lobe) -> np.ndarray:
+    """Map (…, 2) variates to (…, 3) unit directions in the local frame: :meth:`thickbake.lobes.Lobe.sample`.
 
     Examples
     --------
@@ -148,38 +121,17 @@ def sample_lobe(u: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
     >>> np.allclose(d, [[0, 0, 1]])
     True
     """
-    cos_t, sin_t = lobe_cos_sin(u[..., 0], cone_deg, lobe)
-    phi = u[..., 1] * np.float32(2 * math.pi)
-    out = np.empty(u.shape[:-1] + (3,), dtype=u.dtype)
-    out[..., 0] = sin_t * np.cos(phi)
-    out[..., 1] = sin_t * np.sin(phi)
-    out[..., 2] = cos_t
-    return out
+    return lobe_named(lobe).sample(u, cone_deg)
 
 
-def lobe_pdf(directions: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
-    """Solid-angle density (…,) of local directions (…, 3) under the lobe; 0 outside the cone."""
-    alpha = math.radians(cone_deg)
-    cos_t = directions[..., 2]
-    inside = cos_t >= math.cos(alpha) - 1e-12
-    if lobe == "cosine":
-        pdf = cos_t / (math.pi * math.sin(alpha) ** 2)
-    else:
-        pdf = np.full_like(cos_t, 1.0 / (2 * math.pi * (1 - math.cos(alpha))))
-    return np.where(inside, pdf, 0.0)
+def lobe_pdf(directions: np.ndarray, cone_deg: float, lobe: str | Lobe) -> np.ndarray:
+    """Solid-angle density of local directions under the lobe: :meth:`thickbake.lobes.Lobe.pdf`."""
+    return lobe_named(lobe).pdf(directions, cone_deg)
 
 
-def lobe_inverse(directions: np.ndarray, cone_deg: float, lobe: str) -> np.ndarray:
-    """Inverse of :func:`sample_lobe`: (…, 3) local directions → (…, 2) variates in [0, 1)."""
-    alpha = math.radians(cone_deg)
-    cos_t = np.clip(directions[..., 2], -1, 1)
-    if lobe == "cosine":
-        u1 = (1 - cos_t * cos_t) / math.sin(alpha) ** 2
-    else:
-        u1 = (1 - cos_t) / (1 - math.cos(alpha))
-    phi = np.arctan2(directions[..., 1], directions[..., 0])
-    u2 = np.mod(phi / (2 * math.pi), 1.0)
-    return np.stack([u1, u2], axis=-1)
+def lobe_inverse(directions: np.ndarray, cone_deg: float, lobe: str | Lobe) -> np.ndarray:
+    """Inverse of :func:`sample_lobe`: :meth:`thickbake.lobes.Lobe.inverse`."""
+    return lobe_named(lobe).inverse(directions, cone_deg)
 
 
 def orthonormal_frames(normals: np.ndarray):
@@ -206,7 +158,7 @@ def orthonormal_frames(normals: np.ndarray):
     return tangent, bitangent
 
 
-def ray_directions(u1: np.ndarray, u2: np.ndarray, axis: np.ndarray, cone_deg: float, lobe: str):
+def ray_directions(u1: np.ndarray, u2: np.ndarray, axis: np.ndarray, cone_deg: float, lobe: str | Lobe):
     """World-space ray directions for n samples × k rays, built in place in float32.
 
     Equivalent to ``sample_lobe`` followed by a rotation of local +z onto each sample's ``axis``,
@@ -219,7 +171,7 @@ def ray_directions(u1: np.ndarray, u2: np.ndarray, axis: np.ndarray, cone_deg: f
     axis : (n, 3) float32
         Unit lobe axis of each sample (the inward normal).
     cone_deg : float
-    lobe : {"cosine", "uniform"}
+    lobe : Lobe or its name (see :mod:`thickbake.lobes`)
 
     Returns
     -------
@@ -229,7 +181,7 @@ def ray_directions(u1: np.ndarray, u2: np.ndarray, axis: np.ndarray, cone_deg: f
         Cosine between each direction and its axis.
     """
     n, k = u1.shape
-    cos_t, sin_t = lobe_cos_sin(u1, cone_deg, lobe)
+    cos_t, sin_t = lobe_named(lobe).cos_sin(u1, cone_deg)
     phi = u2 * np.float32(2 * math.pi)
     cx = np.cos(phi)
     cx *= sin_t

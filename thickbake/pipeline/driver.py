@@ -24,12 +24,14 @@ from thickbake.version import __version__
 from thickbake.pipeline.directions import ray_directions, sample_keys, variates
 from thickbake.maps.encode import decode_coefficients, normalise, quantise
 from thickbake.errors import ThickbakeError
-from thickbake.pipeline.measures import Moments, ray_values, texel_reduce
+from thickbake.measures import measure_named
+from thickbake.pipeline.measures import Moments, texel_reduce
 from thickbake.pipeline.load import Asset, load_asset
 from thickbake.maps.files import check_output_path, write_map
 from thickbake.maps.padding import pad_map
-from thickbake.settings import BakeSettings
-from thickbake.pipeline.trace import inward_origins
+from thickbake.pipeline.trace import RayEngine
+from thickbake.settings import BakeSettings, RunOptions, check_memory, split_options
+from thickbake.pipeline.origins import inward_origins
 from thickbake.pipeline.texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
 
 #: First batch of rays per sample in adaptive mode; later batches double the count, so every sample
@@ -59,9 +61,11 @@ class BakeResult:
     rays : (h, w) int32
         Rays traced per texel.
     settings : BakeSettings
-        The resolved settings (reach, bias, pad, threads filled in).
+        The resolved settings (reach, bias, pad filled in).
     info : dict
         Figures for the sidecar (coverage, stats, timings, mesh report, input file).
+    run : RunOptions
+        How it ran (threads filled in).
     """
 
     values: np.ndarray
@@ -71,6 +75,7 @@ class BakeResult:
     rays: np.ndarray
     settings: BakeSettings
     info: dict = field(default_factory=dict)
+    run: RunOptions = field(default_factory=RunOptions)
 
     def padded(self) -> np.ndarray:
         """(h, w) float32 values with seam padding applied (covered texels unchanged)."""
@@ -148,12 +153,16 @@ class BakeResult:
 
 @dataclass
 class _Context:
+    """What every tile of one bake shares: inputs, resolved options, and the maps tiles write into."""
+
     asset: Asset
     settings: BakeSettings
-    engine: object
+    run: RunOptions
+    engine: RayEngine
     tri_px: np.ndarray
     jacobian: np.ndarray
     tile: int
+    rays_per_sample: int
     values: np.ndarray
     stderr: np.ndarray
     area: np.ndarray
@@ -161,20 +170,29 @@ class _Context:
     claims: np.ndarray
 
 
-def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[float, int], None] | None = None,
-         engine=None, **options) -> BakeResult:
+#: Figures each tile reports, summed over the bake.
+_TALLY_KEYS = ("rays", "misses", "overlapped", "samples", "rays_cap", "origins_moved", "origins_outside")
+
+
+def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = None, *,
+         progress: Callable[[float, int], None] | None = None, engine: RayEngine | None = None,
+         **options) -> BakeResult:
     """Bake a thickness-type map of a UV-mapped mesh.
 
     Parameters
     ----------
     mesh : str, os.PathLike, trimesh.Trimesh, trimesh.Scene or Asset
-        The asset (a file is loaded with :func:`thickbake.mesh.load_asset`).
+        The asset (a file is loaded with :func:`thickbake.pipeline.load.load_asset`).
     settings : BakeSettings, optional
-        Defaults to ``BakeSettings()``; keyword ``options`` override its fields.
+        What the map holds; defaults to ``BakeSettings()``.
+    run : RunOptions, optional
+        How the bake runs (threads, work-item size, texel order); defaults to ``RunOptions()``.
     progress : callable(fraction_done, rays_traced), optional
         Called from worker threads after each tile.
-    engine : optional
-        A ray engine over the asset's trace mesh (see :mod:`thickbake.trace`); built if omitted.
+    engine : RayEngine, optional
+        A ray engine over the asset's trace mesh (see :mod:`thickbake.pipeline.trace`); built if omitted.
+    **options
+        Fields of either object (``size=512``, ``threads=2``), overriding ``settings`` and ``run``.
 
     Returns
     -------
@@ -183,42 +201,75 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
     Examples
     --------
     >>> import thickbake
-    >>> from thickbake import shapes
+    >>> from thickbake.checks import shapes
     >>> result = thickbake.bake(shapes.sphere(radius=1.0).mesh, size=64, rays=16, cone=0)
     >>> bool(abs(result.values[result.covered].mean() - 2.0) < 0.01)
     True
     """
     start = time.perf_counter()
-    if settings is None:
-        settings = BakeSettings.from_mapping(options, where="bake options") if options else BakeSettings()
-    elif options:
-        settings = settings.replace(**options)
+    settings, run = _with_options(settings, run, options)
     asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
     s = settings.resolve(asset.diagonal)
+    r = run.resolve()
     if engine is None:
         from thickbake.pipeline.trace import make_engine
         engine = make_engine(asset.trace_vertices, asset.trace_faces)
+    ctx, tiles, starts, members = _prepare(asset, s, r, engine)
+    setup_seconds = time.perf_counter() - start
+    totals = _run_tiles(ctx, tiles, starts, members, progress)
+    trace_seconds = time.perf_counter() - start - setup_seconds
+
+    covered = ctx.claims > 0
+    if not covered.any():
+        raise ThickbakeError("no texel of the map is covered by the UV layout", path=asset.path,
+                             fix="check the UVs lie inside the 0–1 square")
+    timing = {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)}
+    info = _bake_info(ctx, covered, totals, time.perf_counter() - start, timing)
+    return BakeResult(values=ctx.values, covered=covered, stderr=ctx.stderr, area=ctx.area, rays=ctx.rays,
+                      settings=s, info=info, run=r)
+
+
+def _with_options(settings: BakeSettings | None, run: RunOptions | None,
+                  options: dict) -> tuple[BakeSettings, RunOptions]:
+    """Apply keyword options of either kind to the settings and run options (defaults when None)."""
+    content, run_changes = split_options(options, where="bake options")
+    if settings is None:
+        settings = BakeSettings.from_mapping(content, where="bake options") if content else BakeSettings()
+    elif content:
+        settings = settings.replace(**content)
+    if run is None:
+        run = RunOptions(**run_changes)
+    elif run_changes:
+        run = run.replace(**run_changes)
+    check_memory(settings, run)
+    return settings, run
+
+
+def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, engine: RayEngine):
+    """The shared context of a bake and its tiles: (context, tiles, starts, members) of :func:`tile_buckets`."""
     width, height = s.size
-
     tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, asset.triangle_uv, asset.has_uv, width, height)
-
     rays_per_sample = 1 if s.cone == 0 else s.rays
-    tile = _tile_side(s.chunk_rays, rays_per_sample, s.supersample, width, height)
+    tile = _tile_side(r.chunk_rays, rays_per_sample, s.supersample, width, height)
     tiles, starts, members = tile_buckets(tri_px, valid, width, height, tile)
-
     ctx = _Context(
-        asset=asset, settings=s, engine=engine, tri_px=tri_px, jacobian=jacobian, tile=tile,
+        asset=asset, settings=s, run=r, engine=engine, tri_px=tri_px, jacobian=jacobian, tile=tile,
+        rays_per_sample=rays_per_sample,
         values=np.zeros((height, width), np.float32), stderr=np.zeros((height, width), np.float32),
         area=np.zeros((height, width), np.float32), rays=np.zeros((height, width), np.int32),
         claims=np.zeros((height, width), np.uint16),
     )
-    totals = {"rays": 0, "misses": 0, "overlapped": 0, "samples": 0, "rays_cap": 0, "origins_moved": 0,
-              "origins_outside": 0}
+    return ctx, tiles, starts, members
+
+
+def _run_tiles(ctx: _Context, tiles: np.ndarray, starts: np.ndarray, members: np.ndarray, progress) -> dict:
+    """Bake every tile, in a thread pool unless one thread or one tile; returns the summed tallies."""
+    totals = dict.fromkeys(_TALLY_KEYS, 0)
     lock = threading.Lock()
     done = [0]
 
     def run(i: int):
-        out = _bake_tile(ctx, int(tiles[i, 0]), int(tiles[i, 1]), members[starts[i]:starts[i + 1]], rays_per_sample)
+        out = _bake_tile(ctx, int(tiles[i, 0]), int(tiles[i, 1]), members[starts[i]:starts[i + 1]])
         with lock:
             for key, value in out.items():
                 totals[key] += value
@@ -226,41 +277,39 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
             if progress is not None:
                 progress(done[0] / len(tiles), totals["rays"])
 
-    setup_seconds = time.perf_counter() - start
-    if s.threads == 1 or len(tiles) <= 1:
+    if ctx.run.threads == 1 or len(tiles) <= 1:
         for i in range(len(tiles)):
             run(i)
-    else:
-        pool = ThreadPoolExecutor(max_workers=s.threads, thread_name_prefix="thickbake")
-        try:
-            for future in [pool.submit(run, i) for i in range(len(tiles))]:
-                future.result()
-        except BaseException:
-            # Ctrl-C or a failing tile: drop the tiles not started yet instead of finishing them all
-            pool.shutdown(wait=True, cancel_futures=True)
-            raise
-        pool.shutdown(wait=True)
-    trace_seconds = time.perf_counter() - start - setup_seconds
+        return totals
+    pool = ThreadPoolExecutor(max_workers=ctx.run.threads, thread_name_prefix="thickbake")
+    try:
+        for future in [pool.submit(run, i) for i in range(len(tiles))]:
+            future.result()
+    except BaseException:
+        # Ctrl-C or a failing tile: drop the tiles not started yet instead of finishing them all
+        pool.shutdown(wait=True, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
+    return totals
 
-    covered = ctx.claims > 0
+
+def _bake_info(ctx: _Context, covered: np.ndarray, totals: dict, seconds: float, timing: dict) -> dict:
+    """The figures of a finished bake that the sidecar records (see :mod:`thickbake.maps.sidecar`)."""
+    s, asset = ctx.settings, ctx.asset
+    width, height = s.size
     n_covered = int(covered.sum())
-    if n_covered == 0:
-        raise ThickbakeError("no texel of the map is covered by the UV layout", path=asset.path,
-                             fix="check the UVs lie inside the 0–1 square")
     warnings = bake_warnings(totals["misses"] / max(totals["rays"], 1), totals["overlapped"] / n_covered,
                              totals["origins_outside"])
     vals = ctx.values[covered].astype(np.float64)
     errs = ctx.stderr[covered].astype(np.float64)
-    seconds = time.perf_counter() - start
-    units = "scene units" if s.measure == "thickness" else "unitless"
-    info = {
+    return {
         "measure": s.measure,
-        "units": units,
+        "units": measure_named(s.measure).units,
         "reach": s.reach,
         "inverted": s.invert,
         "size": [width, height],
         "rays": s.rays,
-        "rays_per_sample": rays_per_sample,
+        "rays_per_sample": ctx.rays_per_sample,
         "coverage": n_covered / (width * height),
         "overlap": totals["overlapped"] / n_covered,
         "stats": {"min": float(vals.min()), "mean": float(vals.mean()), "max": float(vals.max())},
@@ -273,16 +322,15 @@ def bake(mesh, settings: BakeSettings | None = None, *, progress: Callable[[floa
         "origins_outside": int(totals["origins_outside"]),
         "seconds": round(seconds, 3),
         "rays_per_second": totals["rays"] / max(seconds, 1e-9),
-        "engine": getattr(engine, "name", type(engine).__name__),
+        "engine": getattr(ctx.engine, "name", type(ctx.engine).__name__),
         "input": {"file": asset.name, "sha256": asset.sha256},
         "mesh": asset.report.to_dict(),
         "settings": s.to_dict(),
         "settings_hash": s.content_hash(),
-        "timing": {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)},
+        "run": ctx.run.to_dict(),
+        "timing": timing,
         "warnings": warnings,
     }
-    return BakeResult(values=ctx.values, covered=covered, stderr=ctx.stderr, area=ctx.area, rays=ctx.rays,
-                      settings=s, info=info)
 
 
 #: Above these shares a bake says something is off (judgement calls, no published source): most rays
@@ -333,7 +381,7 @@ def _ray_schedule(rays: int, adaptive: bool) -> list[tuple[int, int]]:
     return list(zip(bounds[:-1], bounds[1:]))
 
 
-def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray, rays_per_sample: int) -> dict:
+def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray) -> dict:
     """Rasterise, trace and reduce one tile; writes into the context's maps (disjoint texels)."""
     s = ctx.settings
     asset = ctx.asset
@@ -342,22 +390,59 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray,
                                          ctx.tile, width, s.height, s.supersample)
     n = len(samples)
     if n == 0:
-        return {"rays": 0, "misses": 0, "overlapped": 0, "samples": 0, "rays_cap": 0, "origins_moved": 0,
-                "origins_outside": 0}
-    if s.order == "morton":
+        return dict.fromkeys(_TALLY_KEYS, 0)
+    if ctx.run.order == "morton":
         samples = samples.take(morton_order(samples.texel, width))
     positions, normals = place_samples(asset.triangles, asset.triangle_normals, asset.face_normals, samples, s.bias)
     keys = sample_keys(samples.texel, samples.sub, samples.face)
     origins, sample_bias, unresolved = inward_origins(ctx.engine, positions, normals, asset.face_normals, s.bias)
-    axis = (-normals).astype(np.float32)
+    moments, traced, misses = _trace_samples(ctx, keys, origins, sample_bias, (-normals).astype(np.float32))
+    texels, mean, stderr, area, claims, rays = texel_reduce(samples.texel, moments.mean(), moments.stderr(),
+                                                            samples.area, moments.count)
+    rows, cols = texels // width, texels % width
+    ctx.values[rows, cols] = mean
+    ctx.stderr[rows, cols] = stderr
+    ctx.area[rows, cols] = area
+    ctx.rays[rows, cols] = rays
+    ctx.claims[rows, cols] = np.minimum(claims, 65535)
+    return {"rays": traced, "misses": misses, "overlapped": overlapped, "samples": n,
+            "rays_cap": n * ctx.rays_per_sample, "origins_moved": int((sample_bias < s.bias).sum()),
+            "origins_outside": unresolved}
+
+
+def _trace_samples(ctx: _Context, keys: np.ndarray, origins: np.ndarray, sample_bias: np.ndarray,
+                   axis: np.ndarray) -> tuple[Moments, int, int]:
+    """Trace every sample's rays in engine-sized calls (batches of doubling size when adaptive).
+
+    Parameters
+    ----------
+    keys : (n,) uint64
+        Sample keys (:func:`sample_keys`).
+    origins : (n, 3) float32
+        Ray origins inside the surface, scene units.
+    sample_bias : (n,) float32
+        How far inside each origin lies, scene units.
+    axis : (n, 3) float32
+        Unit inward normal of each sample (the lobe axis).
+
+    Returns
+    -------
+    moments : Moments
+        Per-sample running sums of the measure's per-ray values.
+    traced, misses : int
+        Rays traced, and of those the ones that hit nothing within reach.
+    """
+    s = ctx.settings
+    measure = measure_named(s.measure)
+    n = len(keys)
     moments = Moments(n)
     misses = 0
     traced = 0
     active = np.arange(n)
     adaptive = s.target_error is not None
-    for ray_start, ray_stop in _ray_schedule(rays_per_sample, adaptive):
+    for ray_start, ray_stop in _ray_schedule(ctx.rays_per_sample, adaptive):
         k = ray_stop - ray_start
-        per_call = max(1, min(s.chunk_rays, RAYS_PER_CALL) // k)
+        per_call = max(1, min(ctx.run.chunk_rays, RAYS_PER_CALL) // k)
         for lo in range(0, len(active), per_call):
             idx = active[lo:lo + per_call]
             u1, u2 = variates(s.seed, keys[idx], ray_start, ray_stop, s.sequence)
@@ -369,22 +454,12 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray,
             # remains, whose sign depends on the curvature at the exit (no universal correction)
             chord = distance.reshape(len(idx), k) + sample_bias[idx, None] * cos_theta
             hit = hit.reshape(len(idx), k)
-            moments.add(idx, ray_values(chord, hit, s.measure, s.reach, s.attenuation_distance))
+            moments.add(idx, measure.ray_values(chord, hit, s.reach, s.attenuation_distance))
             misses += int(hit.size - np.count_nonzero(hit))
             traced += hit.size
         if adaptive:
-            more = (moments.stderr()[active] > s.target_error) & (moments.count[active] < rays_per_sample)
+            more = (moments.stderr()[active] > s.target_error) & (moments.count[active] < ctx.rays_per_sample)
             active = active[more]
             if len(active) == 0:
                 break
-    texels, mean, stderr, area, claims, rays = texel_reduce(samples.texel, moments.mean(), moments.stderr(),
-                                                            samples.area, moments.count)
-    rows, cols = texels // width, texels % width
-    ctx.values[rows, cols] = mean
-    ctx.stderr[rows, cols] = stderr
-    ctx.area[rows, cols] = area
-    ctx.rays[rows, cols] = rays
-    ctx.claims[rows, cols] = np.minimum(claims, 65535)
-    return {"rays": traced, "misses": misses, "overlapped": overlapped, "samples": n,
-            "rays_cap": n * rays_per_sample, "origins_moved": int((sample_bias < s.bias).sum()),
-            "origins_outside": unresolved}
+    return moments, traced, misses

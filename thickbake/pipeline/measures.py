@@ -1,13 +1,7 @@
 """Measure stage: per-ray values and their per-sample running moments.
 
-For a ray with chord ``d`` (first-hit distance from the surface point, scene units) and reach ``R``:
-
-* ``thickness``      value = min(d, R); a miss counts as R.  Units: scene units.
-* ``transmittance``  value = exp(−min(d, R) / L), Beer–Lambert with attenuation distance L (the glTF
-  KHR_materials_volume ``attenuationDistance``: T(x) = c^(x/L) per colour channel, here for c = 1/e).
-  Unitless, 0 … 1.
-* ``occlusion``      value = 1 if the ray hits within R, else 0: ambient occlusion of the
-  inward-facing surface (high = thin).  Unitless, 0 … 1.
+What each measure records per ray (thickness, transmittance, occlusion) is defined by its object in
+:mod:`thickbake.measures`; this stage applies it to traced chords and reduces the values.
 
 The texel value is the mean of its samples' means; its standard error comes from each sample's
 sample variance (the independent-sampling formula, which over-estimates the error of a
@@ -18,10 +12,12 @@ from __future__ import annotations
 
 import numpy as np
 
+from thickbake.measures import Measure, measure_named
 
-def ray_values(chord: np.ndarray, hit: np.ndarray, measure: str, reach: float,
+
+def ray_values(chord: np.ndarray, hit: np.ndarray, measure: str | Measure, reach: float,
                attenuation_distance: float | None) -> np.ndarray:
-    """Per-ray values of a measure.
+    """(n, k) float64 per-ray values of a measure: :meth:`thickbake.measures.Measure.ray_values`.
 
     Parameters
     ----------
@@ -29,25 +25,13 @@ def ray_values(chord: np.ndarray, hit: np.ndarray, measure: str, reach: float,
         Chord length from the surface point, scene units (already bias-corrected).
     hit : (n, k) bool
         Whether the ray hit the mesh within reach.
-    measure : {"thickness", "transmittance", "occlusion"}
+    measure : Measure or its name
     reach : float
         Scene units.
     attenuation_distance : float or None
         Scene units; needed for ``transmittance``.
-
-    Returns
-    -------
-    (n, k) float64
     """
-    if measure == "occlusion":
-        return hit.astype(np.float64)
-    reach = float(reach)  # a Python float keeps the chords' dtype (float32 from the engine)
-    d = np.where(hit, np.minimum(chord, reach), reach).astype(np.float64)
-    if measure == "thickness":
-        return d
-    if measure == "transmittance":
-        return np.exp(-d / float(attenuation_distance))
-    raise ValueError(f"unknown measure {measure!r}")
+    return measure_named(measure).ray_values(chord, hit, reach, attenuation_distance)
 
 
 class Moments:

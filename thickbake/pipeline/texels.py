@@ -38,7 +38,7 @@ CANDIDATE_BATCH = 1 << 20
 SUBPIXEL = 256
 #: Samples are kept this many biases away from the edges of their triangle (see keep_off_edges):
 #: enough for the inward bias step not to cross the neighbouring face at edges sharper than 90°,
-#: down to wedges of atan(1/4) ≈ 14°; thinner places are handled by trace.inward_origins.
+#: down to wedges of atan(1/4) ≈ 14°; thinner places are handled by origins.inward_origins.
 EDGE_MARGIN_BIASES = 4.0
 
 

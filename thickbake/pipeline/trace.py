@@ -5,14 +5,55 @@ triangle (an inward ray leaves the solid through a back face).  :class:`EmbreeEn
 Embree) is the real one; it releases the GIL inside each call, so a thread pool over one shared scene
 uses every core.  :class:`TrimeshEngine` (trimesh's pure-Python/rtree intersector) is the fallback
 when embreex cannot be imported: correct, and about three orders of magnitude slower for rays that
-start inside a mesh.
+start inside a mesh.  Both implement :class:`RayEngine`, the one interface the rest of the package
+uses (any object with these methods works, e.g. a recorder wrapping an engine in a benchmark).
 """
 
 from __future__ import annotations
 
 import warnings
+from typing import Protocol, runtime_checkable
 
 import numpy as np
+
+
+@runtime_checkable
+class RayEngine(Protocol):
+    """What the bake and the checks ask of a ray engine over one triangle mesh.
+
+    Hits count on either side of a triangle (an inward ray leaves the solid through a back face).
+
+    Attributes
+    ----------
+    name : str
+        Recorded in the sidecar (``"embree"``, ``"trimesh"``).
+    """
+
+    name: str
+
+    def first_hit(self, origins: np.ndarray, directions: np.ndarray,
+                  max_distance: float) -> tuple[np.ndarray, np.ndarray]:
+        """Distance to the first hit along each ray, up to ``max_distance``.
+
+        Parameters
+        ----------
+        origins, directions : (n, 3) float32, C-contiguous
+            Scene units; directions of unit length.
+        max_distance : float
+            Scene units; hits beyond it are ignored.
+
+        Returns
+        -------
+        distance : (n,) float32
+            Hit distance, or ``max_distance`` for rays that hit nothing within it.
+        hit : (n,) bool
+        """
+        ...
+
+    def first_hit_faces(self, origins: np.ndarray, directions: np.ndarray,
+                        max_distance: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Like :meth:`first_hit`, plus the (n,) int64 index of the triangle hit (−1 for misses)."""
+        ...
 
 
 class EmbreeEngine:
@@ -104,7 +145,7 @@ class TrimeshEngine:
         return distance, hit
 
 
-def make_engine(vertices: np.ndarray, faces: np.ndarray, backend: str = "auto"):
+def make_engine(vertices: np.ndarray, faces: np.ndarray, backend: str = "auto") -> RayEngine:
     """The fastest available engine (``"auto"``), or a named one (``"embree"``, ``"trimesh"``)."""
     if backend in ("auto", "embree"):
         try:
@@ -118,52 +159,3 @@ def make_engine(vertices: np.ndarray, faces: np.ndarray, backend: str = "auto"):
                 RuntimeWarning, stacklevel=2,
             )
     return TrimeshEngine(vertices, faces)
-
-
-#: Attempts at shrinking an origin's bias (by 4× each) before giving up on it.  1e-4 of the diagonal
-#: / 4⁴ is still ~7 float32 ulps of a coordinate of that size, so self-hits stay impossible.
-ORIGIN_SHRINK_TRIES = 4
-
-
-def inward_origins(engine, positions: np.ndarray, normals: np.ndarray, face_normals: np.ndarray, bias: float):
-    """Ray origins ``bias`` inside the surface, moved closer wherever that step left the solid.
-
-    Where the solid is thinner than ``bias`` (a sharp rim, a blade edge), stepping ``bias`` along −N
-    crosses the opposite surface and rays would start outside.  A probe ray from the origin back along
-    +N tells: from inside it leaves through a back face (its normal agrees with the probe), from
-    outside it enters through a front face.  Failing samples retry with a quarter of the bias.
-
-    Parameters
-    ----------
-    engine
-        Ray engine over the traced mesh (``first_hit_faces``).
-    positions, normals : (n, 3) float64
-        Surface points and their outward unit shading normals, scene units.
-    face_normals : (f, 3) float64
-        Outward unit normals of the traced triangles.
-    bias : float
-        Scene units.
-
-    Returns
-    -------
-    origins : (n, 3) float32
-    sample_bias : (n,) float32
-        The offset used per sample (``bias`` or a quarter of it, a sixteenth, ...).
-    unresolved : int
-        Samples whose probe still entered a front face at the smallest bias tried.
-    """
-    sample_bias = np.full(len(positions), bias, dtype=np.float64)
-    origins = (positions - sample_bias[:, None] * normals).astype(np.float32)
-    if bias <= 0 or len(positions) == 0:
-        return origins, sample_bias.astype(np.float32), 0
-    todo = np.arange(len(positions))
-    for attempt in range(ORIGIN_SHRINK_TRIES + 1):
-        probe = np.ascontiguousarray(normals[todo], dtype=np.float32)
-        _, hit, face = engine.first_hit_faces(origins[todo], probe, float(3 * sample_bias[todo].max()))
-        entered = hit & (np.einsum("ij,ij->i", probe, face_normals[np.maximum(face, 0)]) < 0)
-        todo = todo[entered]
-        if len(todo) == 0 or attempt == ORIGIN_SHRINK_TRIES:
-            break
-        sample_bias[todo] *= 0.25
-        origins[todo] = (positions[todo] - sample_bias[todo, None] * normals[todo]).astype(np.float32)
-    return origins, sample_bias.astype(np.float32), int(len(todo))
