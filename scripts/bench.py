@@ -14,6 +14,8 @@ Prints, on one generated ~80k-face closed UV-mapped mesh:
 * adaptive rays: p95 error against a 512-ray reference and the share of rays traced, fixed vs
   ``--target-error``, on the shell-and-ball shape and on the bundled sample;
 * ray order (Z order vs rows) and work-item size (``chunk_rays``);
+* incremental batch: a second ``run_batch`` over an unchanged folder (every asset skipped) against
+  the first, as a ratio of wall-clock times;
 * with ``--memory-size N``: peak RSS of an N² bake with 64 rays in a fresh process.
 
 Machines are shared and noisy: only ratios measured in the same run mean anything.
@@ -205,6 +207,31 @@ def bench_memory(size: int, rays: int, faces: int) -> dict:
             "rays_traced": int(rays_traced), "seconds": float(seconds)}
 
 
+def bench_incremental(assets: int, size: int, rays: int) -> dict:
+    """Wall-clock of a first batch over ``assets`` UV spheres and of a second, fully skipped one."""
+    import tempfile
+
+    from thickbake.batch.plan import run_batch
+    from thickbake.checks import shapes
+
+    with tempfile.TemporaryDirectory(prefix="thickbake-bench-") as tmp:
+        src, out = Path(tmp) / "src", Path(tmp) / "out"
+        src.mkdir()
+        for i in range(assets):
+            (src / f"ball{i}.obj").write_bytes(shapes.obj_bytes(shapes.sphere(radius=1.0 + 0.1 * i, segments=24).mesh))
+        (src / "thickbake.toml").write_text(f"[defaults]\nsize = {size}\nrays = {rays}\n")
+        start = time.perf_counter()
+        first = run_batch(src, out)
+        first_s = time.perf_counter() - start
+        start = time.perf_counter()
+        second = run_batch(src, out)
+        second_s = time.perf_counter() - start
+    totals = second.report["totals"]
+    assert first.exit_code == 0 and totals["skipped"] == assets, totals
+    return {"assets": assets, "size": size, "rays": rays, "first_seconds": first_s, "second_seconds": second_s,
+            "second_over_first": second_s / first_s}
+
+
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--size", type=int, default=1024, help="map size for the throughput runs (default 1024)")
@@ -265,6 +292,12 @@ def main(argv=None) -> int:
     print("\n== ray order within a work item and rays per work item (end-to-end rays/s, same run)")
     for label, value in o.items():
         print(f"{label:24s} {value / 1e6:8.2f} M rays/s")
+
+    b = bench_incremental(3 if args.quick else 8, 32 if args.quick else 256, 8 if args.quick else 64)
+    figures["incremental_batch"] = b
+    print(f"\n== incremental batch: {b['assets']} assets, {b['size']}², {b['rays']} rays")
+    print(f"first run {b['first_seconds']:.2f} s, second run (all skipped) {b['second_seconds']:.2f} s: "
+          f"ratio {b['second_over_first']:.3f}")
 
     figures["peak_rss_mb"] = peak_rss_mb()
     print(f"\npeak RSS of this process: {figures['peak_rss_mb']:.0f} MB (holds the recorded rays for A)")

@@ -189,19 +189,17 @@ def test_html_report_is_a_self_contained_contact_sheet(first_run):
 def test_second_run_skips_and_changes_rebake_only_what_they_touch(tmp_path):
     src = make_library(tmp_path)
     out = tmp_path / "maps"
-    t0 = time.perf_counter()
     code, _, _ = run_cli("batch", src, "-o", out)
-    first = time.perf_counter() - t0
     assert code == 1
     before = {rel: p.read_bytes() for rel, p in maps_in(out).items()}
+    before_mtimes = {rel: p.stat().st_mtime_ns for rel, p in maps_in(out).items()}   # a skip rewrites nothing
 
-    t0 = time.perf_counter()
+    # (how much faster the skipping run is, is measured by scripts/bench.py, not asserted here)
     code, stdout, _ = run_cli("batch", src, "-o", out)
-    second = time.perf_counter() - t0
     assert code == 1  # the two broken assets still fail
     assert statuses(out) == {**{rel: "skipped" for rel in GOOD}, **{rel: "failed" for rel in BROKEN}}
     assert {rel: p.read_bytes() for rel, p in maps_in(out).items()} == before
-    assert second < 0.35 * first, (first, second)
+    assert {rel: p.stat().st_mtime_ns for rel, p in maps_in(out).items()} == before_mtimes
     # a failure is not retried while nothing about it changed
     reasons = {r["source"]: r["reason"] for r in report_of(out)["assets"]}
     assert reasons["broken/corrupt.glb"].startswith("unchanged since it failed")

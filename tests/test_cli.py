@@ -145,6 +145,7 @@ def test_bundled_samples_are_fit_for_baking(sample):
     from pathlib import Path
 
     path = Path(__file__).resolve().parent.parent / "samples" / sample
-    proc = run("verify", path, "--size", "128", "--rays", "32")
+    proc = run("verify", path, "--size", "128", "--rays", "32", "--json", "-")
     assert proc.returncode == 0, proc.stdout[-2000:]
-    assert proc.stdout.strip().splitlines()[-2] == "fit for baking"
+    report = json.loads(proc.stdout)
+    assert report["passed"] is True and report["verdict"] == "fit for baking"

@@ -36,16 +36,40 @@ def run_cli(capsys, *args):
     return code, out.out, out.err
 
 
-def figure(out, label):
-    line = next(l for l in out.splitlines() if l.strip().startswith(label))
-    return line.split()[len(label.split())]
+def run_json(capsys, *args):
+    """``thickbake compare ARGS --json -`` through the real entry point: (exit code, figures as JSON)."""
+    code, out, err = run_cli(capsys, *args, "--json", "-")
+    return code, json.loads(out)
 
 
-def test_map_against_itself(maps, capsys):
-    code, out, err = run_cli(capsys, maps / "a16.png", maps / "a16.png")
-    assert code == 0, err
-    assert figure(out, "RMSE") == "0" and figure(out, "largest |A - B|") == "0"
-    assert "inf (identical)" in out and "PASS" in out
+def test_figures_of_a_known_difference(tmp_path, capsys):
+    # A planted difference with figures worked out by hand: 1200 texels non-empty in either map, 400 of
+    # them +0.03 (A > B), 200 −0.25 (A < B), the rest equal.  RMSE = √((400·0.03² + 200·0.25²)/1200),
+    # PSNR = 20·log10(peak / RMSE) with peak the larger full scale (reach 2 for these thickness maps).
+    a = np.zeros((40, 50))
+    a[5:35, 5:45] = 0.5
+    b = a.copy()
+    b[5:15, 5:45] -= 0.03
+    b[25:30, 5:45] += 0.25
+    _write_float(tmp_path / "a.tif", a, reach=2.0)
+    _write_float(tmp_path / "b.tif", b, reach=1.0)
+    rmse = np.sqrt((400 * 0.03 ** 2 + 200 * 0.25 ** 2) / 1200)
+    c = compare_maps(load_map(tmp_path / "a.tif"), load_map(tmp_path / "b.tif"), tolerance=0.1)
+    assert c.count == 1200 and c.peak == 2.0                  # thickness: full scale = reach, the larger one
+    assert c.rmse == pytest.approx(rmse, rel=1e-6)          # float32 storage of 0.5 ± 0.03 / 0.25
+    assert c.max_abs == pytest.approx(0.25, rel=1e-6)
+    assert c.psnr == pytest.approx(20 * np.log10(2.0 / rmse), rel=1e-6)
+    assert (c.beyond, c.a_above, c.a_below) == (200, 0, 200)
+    assert c.share_beyond == pytest.approx(200 / 1200)
+    # the command line reports the same figures as JSON on stdout, and fails beyond --max-share
+    code, doc = run_json(capsys, tmp_path / "a.tif", tmp_path / "b.tif", "--tolerance", "0.1")
+    assert code == 1 and doc["passed"] is False
+    assert doc["rmse"] == pytest.approx(c.rmse) and doc["texels_compared"] == 1200 and doc["beyond"] == 200
+    code, doc = run_json(capsys, tmp_path / "a.tif", tmp_path / "b.tif", "--tolerance", "0.1", "--max-share", "0.2")
+    assert code == 0 and doc["passed"] is True and doc["max_share"] == 0.2
+    # equal maps: no difference, PSNR infinite (null in JSON), and the command passes
+    code, doc = run_json(capsys, tmp_path / "a.tif", tmp_path / "a.tif")
+    assert code == 0 and doc["rmse"] == 0 and doc["max_abs"] == 0 and doc["psnr_db"] is None
 
 
 def test_8_bit_against_16_bit_within_half_steps(maps, capsys, sphere_bake):
@@ -55,8 +79,8 @@ def test_8_bit_against_16_bit_within_half_steps(maps, capsys, sphere_bake):
     c = compare_maps(load_map(maps / "a8.png"), load_map(maps / "a16.png"))
     assert 0 < c.max_abs <= bound * (1 + 1e-12)
     assert c.tolerance == pytest.approx(reach / 255)  # default: one 8-bit step of the coarser map
-    code, out, _ = run_cli(capsys, maps / "a8.png", maps / "a16.png")
-    assert code == 0 and "one 8-bit step" in out
+    code, doc = run_json(capsys, maps / "a8.png", maps / "a16.png")
+    assert code == 0 and doc["tolerance"] == pytest.approx(reach / 255) and doc["beyond"] == 0
 
 
 def test_png_against_float_tiff(maps, sphere_bake):
@@ -102,10 +126,10 @@ def test_difference_image_colours_and_share(tmp_path, capsys):
     _write_float(tmp_path / "a.tif", a)
     _write_float(tmp_path / "b.tif", b)
     diff = tmp_path / "diff.png"
-    code, out, _ = run_cli(capsys, tmp_path / "a.tif", tmp_path / "b.tif", "-o", diff, "--tolerance", "0.05")
-    assert code == 1 and "FAIL" in out
-    share = 20 * 40 / (30 * 40)
-    assert f"{share:.3%}" in out
+    code, doc = run_json(capsys, tmp_path / "a.tif", tmp_path / "b.tif", "-o", diff, "--tolerance", "0.05")
+    assert code == 1 and doc["passed"] is False
+    assert doc["share_beyond"] == pytest.approx(20 * 40 / (30 * 40))
+    assert (doc["a_above"], doc["a_below"]) == (10 * 40, 10 * 40)
     image = np.asarray(Image.open(diff))
     assert image.shape == (40 + LEGEND_HEIGHT, max(50, LEGEND_MIN_WIDTH), 3)
     # saturation at max(|A − B|, tolerance) = 0.2: the red band is full red, the blue band half way

@@ -1,6 +1,6 @@
 """``thickbake verify``: closed forms against independent integration, the analytic run, and asset checks.
 
-Sources beside each check: the cone formulas are our own derivation (stated in thickbake.tolerance)
+Sources beside each check: the cone formulas are our own derivation (stated in thickbake.checks.verify)
 and are checked here against scipy.integrate over the polar angle; Cauchy's mean chord 4V/S is
 A. Cauchy (1832) / L. A. Santaló, *Integral Geometry and Geometric Probability* (1976), and for
 non-convex bodies with every chord segment counted Mazzolo, Roesslinger & Gille, J. Math. Phys.
@@ -20,26 +20,27 @@ from thickbake.cli.main import main
 from thickbake.pipeline.load import load_asset
 from thickbake.checks.meshcheck import face_orientation, front_face_hits
 from thickbake.checks.coverage import _clip_moments, exact_texel_coverage
-from thickbake.checks.error_budget import (CHEBYSHEV_K95, bonferroni_k, measure_value, sphere_cone_expected,
-                                 sphere_systematic_bound)
+from thickbake.checks.error_budget import bonferroni_k, measure_value, sphere_cone_expected, sphere_systematic_bound
 from thickbake.pipeline.trace import make_engine
 from thickbake.checks.verify import VERIFY_DEFAULTS
 
 
-def run_cli(capsys, *args):
-    code = main([str(a) for a in args])
+def run_verify(capsys, *args):
+    """``thickbake verify ARGS --json -`` through the real entry point: (exit code, report as JSON, stderr)."""
+    code = main(["verify", *map(str, args), "--json", "-"])
     out = capsys.readouterr()
-    return code, out.out, out.err
+    return code, (json.loads(out.out) if out.out else None), out.err
 
 
-def rows(text):
-    """Table rows as (subject, check, result) from the printed report."""
-    found = []
-    for line in text.splitlines():
-        parts = line.split()
-        if parts and parts[-1] in ("PASS", "FAIL", "skip", "warn", "info") and not line.startswith(" "):
-            found.append((parts[0], line[17:47].strip(), parts[-1]))
-    return found
+def status(doc, subject, quantity):
+    """Status of the row (subject, quantity) of a verify report."""
+    found = [c["status"] for c in doc["checks"] if c["subject"] == subject and c["quantity"] == quantity]
+    assert len(found) == 1, (subject, quantity, [(c["subject"], c["quantity"]) for c in doc["checks"]])
+    return found[0]
+
+
+def note(doc, subject, quantity):
+    return next(c["note"] for c in doc["checks"] if c["subject"] == subject and c["quantity"] == quantity)
 
 
 # ---------------------------------------------------------------------------- closed forms
@@ -65,7 +66,7 @@ def _by_quadrature(R, alpha, lobe, measure, reach, L):
 @pytest.mark.parametrize("alpha,reach", [(math.pi / 2, 10.0), (1.0, 10.0), (math.pi / 2, 2.1), (0.4, 3.3),
                                          (0.05, 3.0), (1.3, 0.9)])
 def test_sphere_cone_closed_form_against_quad(measure, lobe, alpha, reach):
-    # our own derivation (thickbake.tolerance docstring) vs scipy.integrate.quad in θ; the quadrature
+    # our own derivation (thickbake.checks.verify docstring) vs scipy.integrate.quad in θ; the quadrature
     # is good to ~1e-12, so 1e-9 relative leaves three orders of magnitude
     R, L = 1.7, 0.8
     expected = _by_quadrature(R, alpha, lobe, measure, reach, L)
@@ -73,21 +74,10 @@ def test_sphere_cone_closed_form_against_quad(measure, lobe, alpha, reach):
     assert got == pytest.approx(expected, rel=1e-9, abs=1e-12)
 
 
-def test_sphere_closed_form_matches_references_values():
-    # computed check values at R = 1.7, α = 1 rad and σ = 1 (numerical quadrature; recomputed by quad above too)
-    assert sphere_cone_expected(1.7, 1.0, "cosine", "thickness", 10.0) == pytest.approx(2.696257825099, abs=1e-11)
-    assert sphere_cone_expected(1.7, 1.0, "uniform", "thickness", 10.0) == pytest.approx(2.618513919976, abs=1e-11)
-    assert sphere_cone_expected(1.7, math.pi / 2, "cosine", "transmittance", 10.0, 1.0) == pytest.approx(
-        0.147605123214, abs=1e-11)
-    # α → 0 tends to the along-normal value 2R (no 0/0)
+def test_sphere_closed_form_narrow_cone_limit():
+    # α → 0 tends to the along-normal value 2R (elementary geometry), without a 0/0 in the closed form
     assert sphere_cone_expected(1.0, 1e-6, "cosine", "thickness", 9.0) == pytest.approx(2.0, abs=1e-9)
-
-
-def test_cauchy_mean_chord_sphere_by_quadrature():
-    # Cauchy (1832) / Santaló (1976): cosine-weighted mean chord = 4V/S; sphere 4R/3, by quad over θ
-    R = 1.3
-    value = integrate.quad(lambda t: 2 * R * math.cos(t) * 2 * math.cos(t) * math.sin(t), 0, math.pi / 2)[0]
-    assert value == pytest.approx(4 * (4 / 3 * math.pi * R**3) / (4 * math.pi * R**2), rel=1e-12)
+    assert sphere_cone_expected(1.0, 1e-6, "uniform", "thickness", 9.0) == pytest.approx(2.0, abs=1e-9)
 
 
 @pytest.mark.parametrize("make", [shapes.box, shapes.l_block])
@@ -123,9 +113,7 @@ def test_cauchy_mean_chord_by_quasi_monte_carlo(make):
     assert abs(mean - shape.cauchy_mean_chord) < 4 * se
 
 
-def test_coverage_factors():
-    # Chebyshev: P(|Z| ≥ k) ≤ 1/k², 1/k² = 5% at k = √20
-    assert CHEBYSHEV_K95 ** -2 == pytest.approx(0.05)
+def test_bonferroni_factor_against_scipy():
     # Bonferroni: n texels each at two-sided α/n; the normal limit of the Student-t quantile
     k = bonferroni_k(10_000, 10**6)
     assert 2 * stats.norm.sf(k) * 10_000 == pytest.approx(1e-3, rel=1e-3)
@@ -226,99 +214,108 @@ def test_front_face_hits_zero_on_clean_shapes():
 # ---------------------------------------------------------------------------- the command
 def test_verify_defaults_pass(capsys, tmp_path):
     # (its run time is reported in README with the command that measures it, not asserted here)
-    out_json = tmp_path / "verify.json"
-    code, out, err = run_cli(capsys, "verify", "--json", out_json)
-    assert code == 0, out + err
-    table = rows(out)
+    code, doc, err = run_verify(capsys)
+    assert code == 0, err
     names = {s.name for s in shapes.analytic_set()}
-    assert {r[0] for r in table} == names
-    cauchy = [r for r in table if r[1].startswith("Cauchy")]
-    assert len(cauchy) == 6 and all(r[2] == "PASS" for r in cauchy)
-    assert ("sphere", "per texel, cone closed form", "PASS") in table
-    assert all(r[2] == "skip" for r in table if r[1].startswith("per texel, along"))
-    assert "all checks passed" in out
-    doc = json.loads(out_json.read_text())
-    assert doc["passed"] is True and len(doc["checks"]) == 12
+    assert {c["subject"] for c in doc["checks"]} == names
+    cauchy = [c for c in doc["checks"] if c["quantity"] == "Cauchy mean chord 4V/S"]
+    assert {c["subject"] for c in cauchy} == names and all(c["status"] == "PASS" for c in cauchy)
+    assert status(doc, "sphere", "per texel, cone closed form") == "PASS"
+    along = [c for c in doc["checks"] if c["quantity"] == "per texel, along the normal"]
+    assert len(along) == len(names) - 1 and all(c["status"] == "skip" for c in along)
+    assert doc["passed"] is True and doc["verdict"] == "all checks passed"
     assert doc["settings"]["size"] == [VERIFY_DEFAULTS["size"]] * 2
     assert doc["settings"]["rays"] == VERIFY_DEFAULTS["rays"]
+    # every passing row holds its figures within its own tolerance
+    for c in doc["checks"]:
+        if c["status"] == "PASS" and c["quantity"] == "Cauchy mean chord 4V/S":
+            assert abs(c["measured"] - c["expected"]) <= c["tolerance"]
+
+
+def test_verify_json_file_and_table(capsys, tmp_path):
+    # --json FILE writes the same report as a file and still prints the table
+    out_json = tmp_path / "verify.json"
+    code = main(["verify", "--shapes", "box", "--size", "64", "--rays", "16", "--json", str(out_json)])
+    printed = capsys.readouterr().out
+    assert code == 0
+    doc = json.loads(out_json.read_text())
+    assert [c["subject"] for c in doc["checks"]] == ["box", "box"]
+    assert doc["verdict"] in printed
     assert sorted(p.name for p in tmp_path.iterdir()) == ["verify.json"]
 
 
 def test_verify_along_the_normal(capsys):
-    code, out, err = run_cli(capsys, "verify", "--cone", "0", "--size", "96")
-    assert code == 0, out + err
-    table = rows(out)
-    along = [r for r in table if r[1].startswith("per texel")]
-    assert len(along) == 6 and all(r[2] == "PASS" for r in along)
-    assert all(r[2] == "skip" for r in table if r[1].startswith("Cauchy"))
+    code, doc, err = run_verify(capsys, "--cone", "0", "--size", "96")
+    assert code == 0, err
+    along = [c for c in doc["checks"] if c["quantity"] == "per texel, along the normal"]
+    assert len(along) == 5 and all(c["status"] == "PASS" for c in along)
+    assert status(doc, "sphere", "per texel, cone closed form") == "PASS"
+    assert all(c["status"] == "skip" for c in doc["checks"] if c["quantity"] == "Cauchy mean chord 4V/S")
 
 
 def test_verify_sphere_transmittance_uniform_cone(capsys):
-    code, out, _ = run_cli(capsys, "verify", "--shapes", "sphere", "--size", "96", "--measure", "transmittance",
-                           "--lobe", "uniform", "--cone", "40")
-    assert code == 0, out
-    assert ("sphere", "per texel, cone closed form", "PASS") in rows(out)
-    assert ("sphere", "Cauchy mean chord 4V/S", "skip") in rows(out)
+    code, doc, err = run_verify(capsys, "--shapes", "sphere", "--size", "96", "--measure", "transmittance",
+                                "--lobe", "uniform", "--cone", "40")
+    assert code == 0, err
+    assert status(doc, "sphere", "per texel, cone closed form") == "PASS"
+    assert status(doc, "sphere", "Cauchy mean chord 4V/S") == "skip"
 
 
 def test_verify_fails_with_one_random_ray(capsys):
-    code, out, _ = run_cli(capsys, "verify", "--shapes", "sphere", "--size", "96", "--rays", "1",
-                           "--sequence", "random")
-    assert code == 1
-    assert ("sphere", "per texel, cone closed form", "FAIL") in rows(out)
-    assert "cannot estimate its noise" in out and "1 check failed" in out
+    code, doc, _ = run_verify(capsys, "--shapes", "sphere", "--size", "96", "--rays", "1", "--sequence", "random")
+    assert code == 1 and doc["passed"] is False
+    assert status(doc, "sphere", "per texel, cone closed form") == "FAIL"
+    assert "cannot estimate its noise" in note(doc, "sphere", "per texel, cone closed form")
+    assert doc["verdict"].startswith("1 check failed")
 
 
-def test_verify_fails_without_bias(capsys, tmp_path):
-    out_json = tmp_path / "v.json"
-    code, out, _ = run_cli(capsys, "verify", "--shapes", "sphere,box", "--size", "96", "--bias", "0",
-                           "--json", out_json)
-    assert code == 1
-    table = rows(out)
-    assert ("sphere", "per texel, cone closed form", "FAIL") in table
-    assert ("box", "Cauchy mean chord 4V/S", "FAIL") in table
-    assert "bias 0 lets rays hit the triangle they start on" in out
-    doc = json.loads(out_json.read_text())
-    assert doc["passed"] is False and any(c["status"] == "FAIL" for c in doc["checks"])
+def test_verify_fails_without_bias(capsys):
+    code, doc, _ = run_verify(capsys, "--shapes", "sphere,box", "--size", "96", "--bias", "0")
+    assert code == 1 and doc["passed"] is False
+    assert status(doc, "sphere", "per texel, cone closed form") == "FAIL"
+    assert status(doc, "box", "Cauchy mean chord 4V/S") == "FAIL"
+    assert any("bias 0 lets rays hit the triangle they start on" in c["note"] for c in doc["checks"])
 
 
 def test_verify_asset_clean_flipped_and_holed(capsys, tmp_path):
     clean = tmp_path / "clean.obj"
     clean.write_bytes(shapes.obj_bytes(shapes.sphere(segments=48).mesh))
-    code, out, _ = run_cli(capsys, "verify", clean, "--size", "128", "--rays", "32")
-    assert code == 0, out
-    assert out.strip().splitlines()[-2].startswith("fit for baking")
+    code, doc, err = run_verify(capsys, clean, "--size", "128", "--rays", "32")
+    assert code == 0, err
+    assert doc["mode"] == "asset" and doc["verdict"].startswith("fit for baking")
 
     flipped = tmp_path / "flipped.obj"
     mesh, count = flipped_sphere()
     flipped.write_bytes(shapes.obj_bytes(mesh))
-    code, out, _ = run_cli(capsys, "verify", flipped, "--size", "128", "--rays", "32", "--cone", "10")
+    code, doc, _ = run_verify(capsys, flipped, "--size", "128", "--rays", "32", "--cone", "10")
     assert code == 1
-    table = rows(out)
-    assert ("flipped.obj", "faces wound outward", "FAIL") in table
-    assert ("flipped.obj", "Cauchy mean chord 4V/S", "FAIL") in table
-    assert f"{count:,} of" in out and "point inward" in out and "(overrides your --cone)" in out
-    assert "not fit for baking: " in out
+    assert status(doc, "flipped.obj", "faces wound outward") == "FAIL"
+    assert status(doc, "flipped.obj", "Cauchy mean chord 4V/S") == "FAIL"
+    wound = next(c for c in doc["checks"] if c["quantity"] == "faces wound outward")
+    assert f"{count:,} of" in wound["note"] and "point inward" in wound["note"]
+    assert "(overrides your --cone)" in json.dumps(doc)
+    assert doc["verdict"].startswith("not fit for baking: ")
 
     holed = tmp_path / "holed.obj"
     holed.write_bytes(shapes.obj_bytes(holed_sphere()))
-    code, out, _ = run_cli(capsys, "verify", holed, "--size", "128", "--rays", "32")
+    code, doc, _ = run_verify(capsys, holed, "--size", "128", "--rays", "32")
     assert code == 1
     asset = load_asset(holed)
-    assert ("holed.obj", "closed surface", "FAIL") in rows(out)
-    assert f"close the holes: {asset.report.boundary_edges:,} open edges" in out
-    assert ("holed.obj", "Cauchy mean chord 4V/S", "FAIL") in rows(out)
+    assert status(doc, "holed.obj", "closed surface") == "FAIL"
+    assert f"close the holes: {asset.report.boundary_edges:,} open edges" in note(doc, "holed.obj", "closed surface")
+    assert status(doc, "holed.obj", "Cauchy mean chord 4V/S") == "FAIL"
 
 
 def test_verify_user_errors(capsys, tmp_path):
-    code, _, err = run_cli(capsys, "verify", "--shapes", "teapot")
+    code, _, err = run_verify(capsys, "--shapes", "teapot")
     assert code == 2 and "unknown shape 'teapot'" in err and len(err.strip().splitlines()) == 1
-    code, _, err = run_cli(capsys, "verify", tmp_path / "missing.obj")
+    code, _, err = run_verify(capsys, tmp_path / "missing.obj")
     assert code == 2 and "no such file" in err
     (tmp_path / "box.obj").write_bytes(shapes.obj_bytes(shapes.box().mesh))
-    code, _, err = run_cli(capsys, "verify", tmp_path / "box.obj", "--shapes", "sphere")
+    code, _, err = run_verify(capsys, tmp_path / "box.obj", "--shapes", "sphere")
     assert code == 2 and "--shapes applies" in err
     (tmp_path / "out").mkdir()
-    code, _, err = run_cli(capsys, "verify", "--json", tmp_path / "out", "--shapes", "box")
+    code = main(["verify", "--json", str(tmp_path / "out"), "--shapes", "box"])
+    err = capsys.readouterr().err
     assert code == 2 and "folder" in err
     assert sorted(p.name for p in tmp_path.iterdir()) == ["box.obj", "out"]
