@@ -124,9 +124,12 @@ class BakeSettings:
         ``thickness``: mean of min(hit distance, reach), scene units.  ``transmittance``: mean of
         exp(−d / attenuation_distance), Beer–Lambert.  ``occlusion``: fraction of rays that hit
         within reach (ambient occlusion of the inward-facing surface).
-    reach : float or None
+    reach : float, str or None
         Longest distance a ray may travel; misses count as ``reach``.  Default: the bounding-box
-        diagonal for thickness/transmittance, a quarter of it for occlusion.
+        diagonal for thickness/transmittance, a quarter of it for occlusion.  ``"30%"``: that share
+        of the bounding-box diagonal.  ``"fit"`` (thickness only): trace with the diagonal, then
+        encode with the :data:`FIT_PERCENTILE` percentile of the covered texels' values, so the
+        map uses its whole code range (texels above it are clipped; the sidecar says how many).
     attenuation_distance : float or None
         Beer–Lambert distance L (the glTF KHR_materials_volume ``attenuationDistance``): light
         falls to 1/e after L.  Default: a tenth of the bounding-box diagonal.
@@ -148,6 +151,12 @@ class BakeSettings:
     target_error : float or None
         Adaptive mode: stop adding rays to a sample once the standard error of its mean is at most
         this (measure units); ``rays`` is the cap.
+    medium : str or None
+        A measured medium (:mod:`thickbake.media`, e.g. ``"marble"``): the map becomes the RGB
+        transmittance exp(−σtr · d) through the baked thickness d.  Needs ``measure="thickness"``.
+    scene_unit : str or None
+        Length of one scene unit (``"1cm"``, ``"1m"``, ``"25.4mm"``) for ``medium``; default 1 m
+        for glTF files (glTF 2.0 §3.5.1), required for other formats.
     """
 
     size: tuple[int, int] = (1024, 1024)
@@ -155,7 +164,7 @@ class BakeSettings:
     cone: float = 90.0
     lobe: str = "cosine"
     measure: str = "thickness"
-    reach: float | None = None
+    reach: float | str | None = None
     attenuation_distance: float | None = None
     invert: bool = False
     supersample: int = 1
@@ -165,6 +174,8 @@ class BakeSettings:
     bias: float | None = None
     sequence: str = "sobol"
     target_error: float | None = None
+    medium: str | None = None
+    scene_unit: str | None = None
 
     def __post_init__(self):
         object.__setattr__(self, "size", parse_size(self.size))
@@ -172,7 +183,7 @@ class BakeSettings:
         _check_float(self, "cone", 0.0, 90.0, inclusive_low=True)
         _check_choice(self, "lobe", LOBES)
         _check_choice(self, "measure", MEASURES)
-        _check_optional_positive(self, "reach")
+        _check_reach(self)
         _check_optional_positive(self, "attenuation_distance")
         if not isinstance(self.invert, bool):
             raise _bad("invert", self.invert, "true or false")
@@ -190,6 +201,7 @@ class BakeSettings:
             _check_float(self, "bias", 0.0, math.inf, inclusive_low=True)
         _check_choice(self, "sequence", SEQUENCES)
         _check_optional_positive(self, "target_error")
+        _check_medium(self)
         check_memory(self, RunOptions())
 
     # ------------------------------------------------------------------ construction helpers
@@ -217,8 +229,11 @@ class BakeSettings:
             raise ThickbakeError("the mesh's bounding box is empty", fix="check the file has geometry")
         changes: dict[str, Any] = {}
         measure = measure_named(self.measure)
-        if self.reach is None:
+        if self.reach is None or self.reach == "fit":
+            # "fit" traces with the full default reach; the bake then narrows the encoded range
             changes["reach"] = float(diagonal * measure.reach_fraction)
+        elif isinstance(self.reach, str):
+            changes["reach"] = float(diagonal * float(self.reach[:-1]) / 100.0)
         if self.bias is None:
             changes["bias"] = float(diagonal * BIAS_DIAGONAL_FRACTION)
         if self.attenuation_distance is None and measure.uses_attenuation:
@@ -238,8 +253,13 @@ class BakeSettings:
 
         Run options are not fields, so they cannot enter it; the value equals what earlier versions
         computed with threads, chunking and order dropped, which keeps batch outputs up to date.
+        Fields added later (``medium``, ``scene_unit``) enter it only when set, for the same reason.
         """
-        blob = json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":")).encode()
+        data = self.to_dict()
+        for key in OPTIONAL_CONTENT_KEYS:
+            if data.get(key) is None:
+                data.pop(key, None)
+        blob = json.dumps(data, sort_keys=True, separators=(",", ":")).encode()
         return hashlib.sha256(blob).hexdigest()
 
 
@@ -332,6 +352,65 @@ def _check_keys(values: Mapping[str, Any], allowed: tuple[str, ...], where: str)
         )
 
 
+#: Content fields that enter :meth:`BakeSettings.content_hash` only when set (added after hashes were
+#: recorded in batch sidecars).
+OPTIONAL_CONTENT_KEYS = ("medium", "scene_unit")
+
+#: ``reach = "fit"`` encodes with this percentile of the covered texels' values: the few texels in
+#: a thick core or behind a rim would otherwise set the scale for all; 0.5% of the texels clipped
+#: to the top code keeps the rest at full precision.  Common practice, no published source.
+FIT_PERCENTILE = 99.5
+
+
+def parse_reach(value) -> float | str | None:
+    """A reach as given: a length in scene units, ``"N%"`` of the bounding-box diagonal, or ``"fit"``."""
+    if value is None or (isinstance(value, (int, float)) and not isinstance(value, bool)):
+        return value
+    if isinstance(value, str):
+        text = value.strip().lower()
+        if text == "fit":
+            return "fit"
+        try:
+            if text.endswith("%"):
+                share = float(text[:-1])
+                if math.isfinite(share) and share > 0:
+                    return f"{share:g}%"
+            else:
+                return float(text)
+        except ValueError:
+            pass
+    raise ThickbakeError(f"setting reach = {value!r} is not allowed",
+                         fix="give a length in scene units, a share of the bounding-box diagonal such as '30%', or 'fit'")
+
+
+def _check_reach(obj) -> None:
+    value = parse_reach(obj.reach)
+    object.__setattr__(obj, "reach", value)
+    if isinstance(value, str):
+        if value == "fit" and obj.measure != "thickness":
+            raise ThickbakeError(f"reach = 'fit' only applies to the thickness measure, not {obj.measure}",
+                                 fix="give a length or a share such as '30%'")
+        return
+    _check_optional_positive(obj, "reach")
+
+
+def _check_medium(obj) -> None:
+    if obj.medium is None:
+        if obj.scene_unit is not None:
+            from thickbake.media import parse_scene_unit
+
+            parse_scene_unit(obj.scene_unit)
+        return
+    from thickbake.media import get_medium, parse_scene_unit
+
+    object.__setattr__(obj, "medium", get_medium(obj.medium).name.lower())
+    if obj.measure != "thickness" or obj.invert:
+        raise ThickbakeError("a medium turns the baked thickness into RGB transmittance",
+                             fix="leave --measure at thickness and --invert off with --medium")
+    if obj.scene_unit is not None:
+        parse_scene_unit(obj.scene_unit)
+
+
 def _bad(name: str, value: Any, allowed: str) -> ThickbakeError:
     return ThickbakeError(f"setting {name} = {value!r} is not allowed", fix=f"use {allowed}")
 
@@ -368,4 +447,4 @@ def _check_optional_positive(obj, name: str) -> None:
 
 __all__ = ["BakeSettings", "RunOptions", "settings_from_mapping", "split_options", "check_memory", "MEASURES", "LOBES",
            "SEQUENCES", "ORDERS", "CONTENT_KEYS", "RUN_KEYS", "OPTION_KEYS", "default_pad", "parse_size",
-           "estimate_bytes"]
+           "estimate_bytes", "FIT_PERCENTILE", "parse_reach"]

@@ -11,7 +11,11 @@ from thickbake.cli.output import EXIT_OK, echo, print_warnings, verbose_lines
 EXAMPLES = """examples:
   thickbake bake samples/candle.glb                       writes samples/candle.thickness.png + .json
   thickbake bake leaf.obj -o maps/leaf.png --size 2048 --rays 128
-  thickbake bake statue.glb --measure transmittance --attenuation-distance 0.05 -o statue.tif"""
+  thickbake bake statue.glb --measure transmittance --attenuation-distance 0.05 -o statue.tif
+  thickbake bake candle.glb --reach fit --write-gltf candle.volume.glb --gltf-transmission 1
+  thickbake bake bust.glb --medium marble -o bust.rgb.png --write-gltf bust.volume.glb
+  thickbake bake leaf.obj --pack-into leaf_masks.png --channel r=thickness --channel b=occlusion
+  thickbake bake leaf.obj -o leaf.exr --exr-type half"""
 
 
 def default_output(mesh: str, measure: str) -> str:
@@ -26,41 +30,155 @@ def add_parser(sub, common) -> None:
                        description="Bake one UV-mapped mesh into a thickness map (PNG 16/8-bit or float TIFF) "
                                    "plus a JSON sidecar (same name, .json) that says how to decode it.",
                        epilog=EXAMPLES)
-    p.add_argument("mesh", metavar="MESH", help="the asset to bake: OBJ, glTF/GLB or PLY file with UV coordinates")
+    p.add_argument("mesh", metavar="MESH", nargs="?",
+                   help="the asset to bake: OBJ, glTF/GLB or PLY file with UV coordinates")
     p.add_argument("-o", "--output", metavar="OUT",
-                   help="OUT.png (encoded, see the sidecar) or OUT.tif (float32 measure); "
-                        "default MESH-STEM.MEASURE.png beside the input")
+                   help="OUT.png (encoded, see the sidecar), OUT.tif (float32 measure) or OUT.exr (half/float); "
+                        "default MESH-STEM.MEASURE.png beside the input (none with --pack-into alone)")
     p.add_argument("--error-out", metavar="FILE.tif", help="also write the per-texel standard error as a float TIFF")
+    d = p.add_argument_group("delivery")
+    d.add_argument("--write-gltf", metavar="OUT.glb|OUT.gltf",
+                   help="also write a copy of the glTF asset whose baked materials carry KHR_materials_volume "
+                        "(thicknessTexture, thicknessFactor in the mesh's units; with --medium the attenuation)")
+    d.add_argument("--gltf-transmission", type=float, metavar="F",
+                   help="with --write-gltf, also set KHR_materials_transmission transmissionFactor F (0-1)")
+    d.add_argument("--pack-into", metavar="IMAGE.png",
+                   help="write the map into one channel of a new or existing RGBA PNG (other channels kept)")
+    d.add_argument("--channel", action="append", metavar="C|C=MEASURE",
+                   help="channel for --pack-into: r, g, b or a; repeat as r=thickness --channel b=occlusion to "
+                        "bake several measures into several channels in one run")
+    d.add_argument("--exr-type", choices=("float", "half"), default="float",
+                   help="sample type of an .exr output (default float)")
     add_bake_options(p)
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
+    from thickbake.errors import ThickbakeError
     from thickbake.maps.files import check_output_path
     from thickbake.pipeline.driver import bake
     from thickbake.pipeline.load import load_asset
     from thickbake.cli.progress import ProgressBar
 
+    if args.medium is not None and args.medium.lower() == "list":
+        from thickbake.media import preset_table
+
+        for line in preset_table():
+            echo(line)
+        return EXIT_OK
+    if args.mesh is None:
+        raise ThickbakeError("no mesh given", fix="thickbake bake MESH [options]; see 'thickbake bake --help'")
     settings, run_options = settings_from_args(args)
-    output = args.output or default_output(args.mesh, settings.measure)
-    check_output_path(output, args.error_out)
+    channels = _channel_plan(args, settings)
+    output = args.output or (None if args.pack_into else default_output(args.mesh, settings.measure))
+    if output is not None:
+        check_output_path(output, args.error_out)
+        if settings.medium and Path(output).suffix.lower() in (".tif", ".tiff"):
+            raise ThickbakeError("an RGB transmittance map cannot be a float TIFF", path=output,
+                                 fix="name it .png or .exr")
+    elif args.error_out:
+        raise ThickbakeError("--error-out goes with a map output", fix="give -o OUT as well")
+    volume_plan = None
+    if args.gltf_transmission is not None and not args.write_gltf:
+        raise ThickbakeError("--gltf-transmission goes with --write-gltf", fix="give --write-gltf OUT.glb as well")
+    if args.write_gltf:
+        from thickbake.pipeline.deliver import check_volume_request
+
+        volume_plan = check_volume_request(args.mesh, args.write_gltf, settings, transmission=args.gltf_transmission)
+    if args.pack_into:
+        from thickbake.maps.packing import load_target
+
+        load_target(args.pack_into, settings.bits)  # an unreadable target is refused before baking
     asset = load_asset(args.mesh)
     print_warnings(asset.report.warnings, args.mesh)
-    bar = ProgressBar(f"baking {os.path.basename(args.mesh)}", enabled=False if args.quiet else None)
-    try:
-        result = bake(asset, settings, run_options, progress=bar)
-    finally:
-        bar.close()
-    result.write(output, error_out=args.error_out)
-    print_warnings(result.info["warnings"], args.mesh)
+    results = {}
+    for measure in dict.fromkeys([settings.measure] + [m for _, m in channels]):
+        bar = ProgressBar(f"baking {os.path.basename(args.mesh)}" + (f" ({measure})" if len(channels) > 1 else ""),
+                          enabled=False if args.quiet else None)
+        try:
+            results[measure] = bake(asset, settings if measure == settings.measure else settings.replace(measure=measure),
+                                    run_options, progress=bar)
+        finally:
+            bar.close()
+    result = results[settings.measure]
+    written = []
+    if volume_plan is not None:
+        from thickbake.pipeline.deliver import write_gltf_copy
+
+        report = write_gltf_copy(args.mesh, args.write_gltf, volume_plan, [(result, None, 0)], args.gltf_transmission)
+        print_warnings(report.pop("warnings"), args.write_gltf)
+        result.info["gltf"] = report
+        written.append(args.write_gltf)
+    if args.pack_into:
+        result.info["packed_into"] = _pack(args.pack_into, channels, results, settings.bits)
+        written.append(args.pack_into)
+    if output is not None:
+        result.write(output, error_out=args.error_out, exr_type=args.exr_type)
+        written.insert(0, output)
+    for other in results.values():
+        print_warnings(other.info["warnings"], args.mesh)
     if not args.quiet:
-        echo(summary_line(result, args.mesh, output))
+        echo(summary_line(result, args.mesh, ", ".join(map(str, written))))
     if args.verbose:
         info = result.info
         verbose_lines([f"settings: {_settings_text(info['settings'])}", f"run: {_settings_text(info['run'])}",
                        f"timing: setup {info['timing']['setup_seconds']:.3f} s, trace {info['timing']['trace_seconds']:.3f} s, "
                        f"total {info['seconds']:.3f} s on engine {info['engine']}"])
     return EXIT_OK
+
+
+def _channel_plan(args, settings) -> list[tuple[str, str]]:
+    """[(channel, measure)] for --pack-into; several measures need CHANNEL=MEASURE for each."""
+    from thickbake.errors import ThickbakeError
+    from thickbake.maps.packing import parse_channel_spec
+
+    if not args.pack_into:
+        if args.channel:
+            raise ThickbakeError("--channel goes with --pack-into", fix="give --pack-into IMAGE.png as well")
+        return []
+    if Path(args.pack_into).suffix.lower() != ".png":
+        raise ThickbakeError("channel packing writes PNG images", path=args.pack_into, fix="name the image .png")
+    if not args.channel:
+        raise ThickbakeError("--pack-into needs the channel to write", fix="add --channel r, g, b or a")
+    specs = [parse_channel_spec(c) for c in args.channel]
+    named = [m for _, m in specs if m]
+    if named and len(named) != len(specs):
+        raise ThickbakeError("with several measures every --channel names its measure",
+                             fix="write them as --channel r=thickness --channel b=occlusion")
+    if named and args.measure is not None:
+        raise ThickbakeError("--measure and --channel C=MEASURE both choose the measure", fix="give one of them")
+    seen = [c for c, _ in specs]
+    if len(set(seen)) != len(seen):
+        raise ThickbakeError("a channel is given twice", fix="give each of r, g, b, a at most once")
+    out = [(c, m or settings.measure) for c, m in specs]
+    from thickbake.settings import MEASURES
+
+    for _, m in out:
+        if m not in MEASURES:
+            raise ThickbakeError(f"unknown measure {m!r} in --channel", fix=f"use one of {', '.join(MEASURES)}")
+    return out
+
+
+def _pack(image: str, channels, results: dict, bits: int) -> dict:
+    """Write the packed PNG and its sidecar; returns the map sidecar's record of it."""
+    from thickbake.maps.encode import decode_coefficients
+    from thickbake.maps.files import write_map
+    from thickbake.maps.packing import merged_sidecar, pack_channels
+
+    data, facts = pack_channels(image, {c: results[m].stored() for c, m in channels}, bits)
+    top = (1 << facts["bits"]) - 1
+    entries = {}
+    for channel, measure in channels:
+        r = results[measure]
+        offset, scale = decode_coefficients(measure, r.settings.reach, r.settings.invert)
+        entries[channel] = {"measure": measure, "units": r.info["units"], "reach": r.settings.reach,
+                            "inverted": r.settings.invert, "input": r.info["input"],
+                            "settings_hash": r.info["settings_hash"],
+                            "encoding": {"code_max": top, "offset": offset, "scale": scale,
+                                         "formula": f"{measure} = {offset:g} + {scale:g} * code / {top}"}}
+    write_map(image, data, merged_sidecar(image, entries, facts["bits"]))
+    return {"image": Path(image).name, "channels": {c: m for c, m in channels}, "bits": facts["bits"],
+            "existed": facts["existed"]}
 
 
 def _settings_text(settings: dict) -> str:

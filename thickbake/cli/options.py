@@ -34,9 +34,18 @@ def _pad(text):
     return value
 
 
+def _reach(text):
+    from thickbake.settings import parse_reach
+
+    try:
+        return parse_reach(text)
+    except ThickbakeError as exc:
+        raise argparse.ArgumentTypeError(exc.one_line()) from None
+
+
 BAKE_OPTION_NAMES = ("size", "rays", "cone", "lobe", "measure", "reach", "attenuation_distance", "invert",
                      "supersample", "pad", "bits", "seed", "threads", "bias", "sequence", "target_error",
-                     "chunk_rays", "order")  # map content and run options (thickbake.settings.OPTION_KEYS)
+                     "chunk_rays", "order", "medium", "scene_unit")  # map content and run options (OPTION_KEYS)
 
 
 def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024", rays_default: str = "64") -> None:
@@ -58,8 +67,10 @@ def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024"
     g.add_argument("--measure", choices=tuple(MEASURES),
                    help="thickness: mean chord in scene units (default); transmittance: mean exp(-d/L); "
                         "occlusion: fraction of rays hitting within --reach")
-    g.add_argument("--reach", type=float, metavar="D",
-                   help="longest ray; misses count as D (default: bounding-box diagonal, or a quarter of it for occlusion)")
+    g.add_argument("--reach", type=_reach, metavar="D|N%|fit",
+                   help="longest ray; misses count as D (default: bounding-box diagonal, or a quarter of it for occlusion); "
+                        "N%% = that share of the diagonal; fit = encode thickness up to the 99.5th percentile of the "
+                        "texels, so the map uses its whole code range")
     g.add_argument("--attenuation-distance", type=float, metavar="L",
                    help="Beer-Lambert distance for transmittance, as glTF attenuationDistance (default: diagonal / 10)")
     g.add_argument("--invert", action="store_const", const=True, help="store 1 - value (bright = thin)")
@@ -74,6 +85,12 @@ def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024"
                    help="direction sequence: scrambled Sobol with per-sample rotation (default) or independent random")
     g.add_argument("--target-error", type=float, metavar="E",
                    help="adaptive: stop adding rays to a sample once its standard error is at most E (measure units)")
+    g.add_argument("--medium", metavar="NAME|list",
+                   help="measured medium (Jensen et al. 2001: marble, skin1, wholemilk, ...): the map becomes the RGB "
+                        "transmittance exp(-sigma_tr d) through the baked thickness; 'list' prints the presets")
+    g.add_argument("--scene-unit", metavar="LENGTH",
+                   help="length of one scene unit for --medium, e.g. 1cm, 1m, 25.4mm (default 1m for glTF; "
+                        "required for other formats)")
     g.add_argument("--chunk-rays", type=int, metavar="N",
                    help="tuning: rays per work item of the thread pool (default 262144; bounds memory, no effect on the map)")
     g.add_argument("--order", choices=("morton", "rows"),

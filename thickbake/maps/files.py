@@ -17,7 +17,7 @@ import numpy as np
 
 from thickbake.errors import ThickbakeError
 
-IMAGE_SUFFIXES = (".png", ".tif", ".tiff")
+IMAGE_SUFFIXES = (".png", ".tif", ".tiff", ".exr")
 #: The process umask, read once: ``tempfile.mkstemp`` creates 0600 files, and outputs should get the
 #: same permissions as any file the user creates (0644 under the usual umask 022).
 _UMASK = os.umask(0)
@@ -46,21 +46,39 @@ def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
 
 
 def image_bytes(array: np.ndarray, suffix: str) -> bytes:
-    """Encode (h, w) uint8/uint16 (PNG) or float32 (TIFF) grayscale to file bytes."""
+    """Encode (h, w) or (h, w, 3|4) uint8/uint16 (PNG, tagged linear: see maps.png), (h, w) float32
+    (TIFF) or (h, w[, 3]) float (EXR, float samples) to file bytes."""
     from PIL import Image
 
     buffer = io.BytesIO()
     if suffix == ".png":
+        from thickbake.maps.png import encode_png
+
         assert array.dtype in (np.uint8, np.uint16)
-        Image.fromarray(np.ascontiguousarray(array)).save(buffer, format="PNG")
+        return encode_png(array, linear=True)
+    if suffix == ".exr":
+        from thickbake.maps.exr import exr_bytes
+
+        return exr_bytes(array)
     else:
         Image.fromarray(np.ascontiguousarray(array, dtype=np.float32)).save(buffer, format="TIFF")
     return buffer.getvalue()
 
 
 def read_image(path: str | os.PathLike) -> np.ndarray:
-    """Read a grayscale PNG (uint8/uint16) or float TIFF into an (h, w) array."""
+    """Read a grayscale PNG (uint8/uint16), float TIFF or EXR into an (h, w) array (RGB maps: (h, w, 3))."""
     from PIL import Image
+
+    if str(path).lower().endswith(".exr"):
+        from thickbake.maps.exr import read_exr
+
+        if not os.path.exists(path):
+            raise ThickbakeError("no such file", path=path, fix="check the path")
+        try:
+            return read_exr(path)[0]
+        except Exception as exc:
+            raise ThickbakeError(f"cannot read the image ({type(exc).__name__})", path=path,
+                                 fix="give a map written by thickbake") from None
 
     try:
         with Image.open(path) as image:
@@ -101,7 +119,7 @@ def check_output_path(path: str | os.PathLike, error_out: str | os.PathLike | No
     path = Path(path)
     if path.suffix.lower() not in IMAGE_SUFFIXES:
         raise ThickbakeError(f"cannot write a map with suffix {path.suffix or '(none)'!r}", path=path,
-                             fix="name the output .png (16/8-bit) or .tif (float32)")
+                             fix="name the output .png (16/8-bit), .tif (float32) or .exr (half/float)")
     _check_target(path, "map")
     side = sidecar_path(path)
     _check_target(side, "sidecar")

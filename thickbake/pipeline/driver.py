@@ -27,6 +27,7 @@ from thickbake.errors import ThickbakeError
 from thickbake.measures import measure_named
 from thickbake.pipeline.measures import Moments, texel_reduce
 from thickbake.pipeline.load import Asset, load_asset
+from thickbake.pipeline.finish import fit_reach, medium_record, medium_scale
 from thickbake.maps.files import check_output_path, write_map
 from thickbake.maps.padding import pad_map
 from thickbake.pipeline.trace import RayEngine
@@ -87,16 +88,28 @@ class BakeResult:
         return normalise(self.padded(), s.measure, s.reach, s.invert)
 
     def codes(self, bits: int | None = None) -> np.ndarray:
-        """(h, w) uint16/uint8 image codes."""
+        """(h, w) uint16/uint8 image codes of the measure (the thickness codes, also with a medium)."""
         return quantise(self.stored(), bits or self.settings.bits)
+
+    def rgb(self) -> np.ndarray:
+        """(h, w, 3) float64 RGB transmittance exp(−σtr · d) of a medium bake (padded)."""
+        from thickbake.media import transmittance
+
+        medium = self.info["medium"]
+        return transmittance(self.padded(), medium["sigma_tr_per_mm"], medium["mm_per_unit"])
 
     def sidecar(self, map_path: str | os.PathLike) -> dict:
         """The sidecar describing the map written at ``map_path`` (PNG codes or float TIFF)."""
         s = self.settings
         path = Path(map_path)
+        suffix = path.suffix.lower()
         data = {"thickbake_version": __version__, "map": path.name}
         data.update(self.info)
-        if path.suffix.lower() == ".png":
+        data["color_space"] = "linear"
+        if "medium" in self.info:
+            data["encoding"] = _medium_encoding(suffix, s.bits)
+            return data
+        if suffix == ".png":
             offset, scale = decode_coefficients(s.measure, s.reach, s.invert)
             top = (1 << s.bits) - 1
             data["encoding"] = {
@@ -105,6 +118,12 @@ class BakeResult:
                 "offset": offset,
                 "scale": scale,
                 "formula": f"{s.measure} = {offset:g} + {scale:g} * code / {top}",
+            }
+        elif suffix == ".exr":
+            data["encoding"] = {
+                "format": "OpenEXR, one channel Y (half or float, see the file's header)",
+                "code_max": None, "offset": 0.0, "scale": 1.0,
+                "formula": f"{s.measure} = value (no scaling, not inverted)",
             }
         else:
             data["encoding"] = {
@@ -122,10 +141,18 @@ class BakeResult:
 
     def image(self, suffix: str) -> np.ndarray:
         """The array a map file of this suffix holds: (h, w) uint16/uint8 codes for ``.png``, float32
-        measure for ``.tif``/``.tiff`` (both padded)."""
-        return self.codes() if suffix.lower() == ".png" else self.padded().astype(np.float32)
+        measure for ``.tif``/``.tiff``/``.exr`` (all padded); with a medium (h, w, 3) RGB
+        transmittance, as codes for ``.png`` and float32 for ``.exr``."""
+        suffix = suffix.lower()
+        if "medium" in self.info:
+            if suffix in (".tif", ".tiff"):
+                raise ThickbakeError("an RGB transmittance map cannot be a float TIFF", path=self.info["input"]["file"],
+                                     fix="write it as .png or .exr")
+            rgb = self.rgb()
+            return quantise(rgb, self.settings.bits) if suffix == ".png" else rgb.astype(np.float32)
+        return self.codes() if suffix == ".png" else self.padded().astype(np.float32)
 
-    def encode(self, map_name: str, image: np.ndarray | None = None) -> tuple[bytes, dict]:
+    def encode(self, map_name: str, image: np.ndarray | None = None, exr_type: str = "float") -> tuple[bytes, dict]:
         """The map file's bytes and its sidecar for a map called ``map_name`` (suffix picks the format).
 
         ``image`` is :meth:`image` for that suffix when the caller already has it (padding and
@@ -136,19 +163,36 @@ class BakeResult:
         suffix = Path(map_name).suffix.lower()
         if image is None:
             image = self.image(suffix)
-        return image_bytes(image, suffix), self.sidecar(map_name)
+        sidecar = self.sidecar(map_name)
+        if suffix == ".exr":
+            from thickbake.maps.exr import exr_bytes, sidecar_attributes
 
-    def write(self, map_path: str | os.PathLike, error_out: str | os.PathLike | None = None) -> Path:
+            sidecar["encoding"]["sample_type"] = exr_type
+            return exr_bytes(image, sidecar_attributes(sidecar), exr_type), sidecar
+        return image_bytes(image, suffix), sidecar
+
+    def write(self, map_path: str | os.PathLike, error_out: str | os.PathLike | None = None,
+              exr_type: str = "float") -> Path:
         """Write the map (PNG codes or float32 TIFF of the measure) and its sidecar, atomically."""
         path = check_output_path(map_path, error_out)
         extra = {}
         if error_out is not None:
             extra[Path(error_out)] = self.stderr
-        data, sidecar = self.encode(path.name)
+        data, sidecar = self.encode(path.name, exr_type=exr_type)
         if error_out is not None:
             sidecar["error_map"] = Path(error_out).name
         write_map(path, data, sidecar, extra)
         return path
+
+
+def _medium_encoding(suffix: str, bits: int) -> dict:
+    """The sidecar's encoding block of an RGB transmittance map."""
+    if suffix == ".png":
+        top = (1 << bits) - 1
+        return {"format": f"PNG, {bits}-bit RGB", "code_max": top, "offset": 0.0, "scale": 1.0,
+                "formula": f"T_channel = code_channel / {top}"}
+    return {"format": "OpenEXR, channels R G B (half or float, see the file's header)", "code_max": None,
+            "offset": 0.0, "scale": 1.0, "formula": "T_channel = value"}
 
 
 @dataclass
@@ -209,6 +253,8 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
     start = time.perf_counter()
     settings, run = _with_options(settings, run, options)
     asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
+    fit = settings.reach == "fit"
+    mm_per_unit = medium_scale(settings, asset.path)  # a missing unit is refused before any tracing
     s = settings.resolve(asset.diagonal)
     r = run.resolve()
     if engine is None:
@@ -225,6 +271,12 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
                              fix="check the UVs lie inside the 0–1 square")
     timing = {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)}
     info = _bake_info(ctx, covered, totals, time.perf_counter() - start, timing)
+    if fit:
+        reach, info["reach_fit"] = fit_reach(ctx.values, covered, s.reach)
+        s = s.replace(reach=reach)
+        info.update(reach=reach, settings=s.to_dict(), settings_hash=s.content_hash())
+    if mm_per_unit is not None:
+        info["medium"] = medium_record(s, mm_per_unit)
     return BakeResult(values=ctx.values, covered=covered, stderr=ctx.stderr, area=ctx.area, rays=ctx.rays,
                       settings=s, info=info, run=r)
 
