@@ -10,12 +10,9 @@ from thickbake.cli.output import EXIT_OK, echo, print_warnings, verbose_lines
 
 EXAMPLES = """examples:
   thickbake bake samples/candle.glb                       writes samples/candle.thickness.png + .json
-  thickbake bake leaf.obj -o maps/leaf.png --size 2048 --rays 128
-  thickbake bake statue.glb --measure transmittance --attenuation-distance 0.05 -o statue.tif
-  thickbake bake candle.glb --reach fit --write-gltf candle.volume.glb --gltf-transmission 1
-  thickbake bake bust.glb --medium marble -o bust.rgb.png --write-gltf bust.volume.glb
-  thickbake bake leaf.obj --pack-into leaf_masks.png --channel r=thickness --channel b=occlusion
-  thickbake bake leaf.obj -o leaf.exr --exr-type half"""
+  thickbake bake leaf.obj -o maps/leaf.exr --size 2048 --rays 128
+  thickbake bake candle.glb --reach fit --medium marble -o candle.rgb.png --write-gltf candle.volume.glb
+  thickbake bake leaf.obj --pack-into leaf_masks.png --channel r=thickness --channel b=occlusion"""
 
 
 def default_output(mesh: str, measure: str) -> str:
