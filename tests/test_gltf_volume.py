@@ -160,6 +160,7 @@ def test_non_gltf_input_is_refused(tmp_path):
 
 def test_three_js_loads_the_written_files(written):
     # source: three.js GLTFLoader (npm three) in headless Chromium, the engine side of the extension
+    bs.node_tools()                       # three.js is served from tests/browser/node_modules
     out = written["out"]
     glbs = {label: path for label, path in written["files"].items() if path.suffix == ".glb"}
     with bs.serve({"/three/": bs.NODE_MODULES / "three", "/check/": bs.BROWSER_DIR, "/files/": out}) as (base, results):
@@ -199,6 +200,7 @@ def test_three_js_samples_the_box_map_at_its_uvs(written):
     # Orientation: where three.js looks up the map (the UVs of each triangle, glTF's upper-left origin),
     # the G value × thicknessFactor must be the box's extent across that face (closed form), within one
     # 8-bit code step of the factor (the browser's 8-bit decode) — a flipped or mirrored map fails.
+    bs.node_tools()                       # three.js is served from tests/browser/node_modules
     path = written["files"]["box"]
     with bs.serve({"/three/": bs.NODE_MODULES / "three", "/check/": bs.BROWSER_DIR,
                    "/files/": path.parent}) as (base, results):
