@@ -4,7 +4,7 @@ One table of exit codes serves every command (README, "Exit codes and errors"):
 
 ====  ==========================================================================
 0     done; every check passed
-1     a check failed (verify, compare), an asset failed (batch), or --strict saw a warning
+1     a check failed (verify, compare) or an asset failed (batch)
 2     bad input or options: one line naming the file or option and the fix; nothing written
 70    internal error (a bug): one line; rerun with --debug for the traceback
 130   interrupted (Ctrl-C)
