@@ -330,6 +330,7 @@ def _previous_user_failures(out: Path) -> dict[str, dict]:
 
 def _outdated_reason(job: AssetJob, out: Path) -> str | None:
     """None when the outputs on disk are up to date (and then ``job.sidecar`` is set), else why not."""
+    from thickbake.maps.sidecar import BatchRecord, read_sidecar
     from thickbake.pipeline.load import file_sha256
 
     map_path = out / job.map_rel
@@ -339,25 +340,22 @@ def _outdated_reason(job: AssetJob, out: Path) -> str | None:
     if not side_path.is_file():
         return "the map has no sidecar"
     try:
-        data = json.loads(side_path.read_text("utf-8"))
-    except (OSError, ValueError):
+        side = read_sidecar(map_path)
+    except ThickbakeError:
         return "the sidecar is unreadable"
-    if not isinstance(data, dict):
-        return "the sidecar is unreadable"
-    batch = data.get("batch") if isinstance(data.get("batch"), dict) else {}
-    if data.get("thickbake_version") != __version__:
-        return f"baked by thickbake {data.get('thickbake_version')}, this is {__version__}"
-    source = data.get("input") if isinstance(data.get("input"), dict) else {}
-    if source.get("sha256") != job.input_sha256 or batch.get("inputs_sha256") != job.inputs_sha256:
+    batch = side.batch or BatchRecord(None, None, None)
+    if side.version != __version__:
+        return f"baked by thickbake {side.data.get('thickbake_version')}, this is {__version__}"
+    if side.input_sha256 != job.input_sha256 or batch.inputs_sha256 != job.inputs_sha256:
         return "the mesh changed"
-    if batch.get("requested_settings_hash") != job.requested_hash:
+    if batch.requested_settings_hash != job.requested_hash:
         return "the settings changed"
     try:
-        if file_sha256(map_path) != batch.get("map_sha256"):
+        if file_sha256(map_path) != batch.map_sha256:
             return "the map does not match its sidecar"
     except OSError:
         return "the map is unreadable"
-    job.sidecar = data
+    job.sidecar = side.data
     return None
 
 
@@ -553,7 +551,8 @@ def _task(plan: BatchPlan, job: AssetJob, threads: int | None) -> dict:
 
 def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
     """Record a worker's result on the job and write its map and sidecar (sidecar last)."""
-    from thickbake.maps.files import sidecar_path, write_map
+    from thickbake.maps.files import write_map
+    from thickbake.maps.sidecar import sidecar_path
 
     job.worker_seconds = result.get("worker_seconds")
     job.threads = result.get("threads")

@@ -13,7 +13,6 @@ to keep in flight), ``submit(task)`` → handle, ``wait(handles, timeout)`` → 
 from __future__ import annotations
 
 import concurrent.futures as cf
-import hashlib
 import multiprocessing
 import os
 import signal
@@ -87,6 +86,7 @@ def _bake_asset(task: dict) -> dict:
     from thickbake.pipeline.driver import bake
     from thickbake.pipeline.load import load_asset
     from thickbake.batch.report import thumbnail_png
+    from thickbake.maps.sidecar import with_batch_record
 
     settings, run = settings_from_mapping(task["settings"], where=task["source"])
     if run.threads is None:
@@ -97,7 +97,7 @@ def _bake_asset(task: dict) -> dict:
     assert Path(task["map_name"]).suffix.lower() == suffix
     image = result.image(suffix)
     data, sidecar = result.encode(task["map_name"], image)
-    sidecar["batch"] = dict(task["batch"], map_sha256=hashlib.sha256(data).hexdigest())
+    sidecar = with_batch_record(sidecar, task["batch"], data)
     return {"map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
             "threads": run.threads, "warnings": list(asset.report.warnings) + list(result.info["warnings"])}
 

@@ -127,15 +127,15 @@ class Comparison:
 
 
 def load_map(path: str | os.PathLike) -> DecodedMap:
-    """Read a map and its sidecar and decode it to measure units.
+    """Read a map and its sidecar (:func:`thickbake.maps.sidecar.read_sidecar`) and decode it to measure units.
 
     Raises
     ------
     ThickbakeError
-        Missing files, a sidecar without an encoding, or an image that does not match it.
+        Missing files, a sidecar without a valid encoding, or an image that does not match it.
     """
-    from thickbake.maps.encode import decode
-    from thickbake.maps.files import read_image, read_sidecar
+    from thickbake.maps.files import read_image
+    from thickbake.maps.sidecar import read_sidecar
 
     path = Path(path)
     if not path.exists():
@@ -144,39 +144,14 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
         raise ThickbakeError("is not a map (a .png or .tif written by 'thickbake bake')", path=path,
                              fix="compare two maps, e.g. thickbake compare old.png new.png")
     side = read_sidecar(path)
-    encoding = side.get("encoding")
-    measure = side.get("measure")
-    if not isinstance(encoding, dict) or measure is None:
-        raise ThickbakeError("the sidecar has no encoding or measure", path=path.with_suffix(".json"),
-                             fix="compare maps written by 'thickbake bake'")
     image = read_image(path)
     if image.ndim != 2:
         raise ThickbakeError(f"the image has {image.shape[2] if image.ndim == 3 else '?'} channels, not one",
                              path=path, fix="compare the single-channel map as written by 'thickbake bake'")
-    reach = side.get("reach")
-    try:
-        offset = float(encoding["offset"])
-        scale = float(encoding["scale"])
-        code_max = encoding.get("code_max")
-    except (KeyError, TypeError, ValueError):
-        raise ThickbakeError("the sidecar's encoding lacks offset or scale", path=path.with_suffix(".json"),
-                             fix="bake the map again") from None
-    full_scale = measure_named(measure).full_scale(reach) if reach else 1.0
-    if code_max is None:
-        if image.dtype.kind != "f":
-            raise ThickbakeError(f"the sidecar describes a float map but the image holds {image.dtype} codes",
-                                 path=path, fix="keep each map with the sidecar written beside it")
-        values = offset + scale * image.astype(np.float64)
-        return DecodedMap(path, values, measure, reach, full_scale, 0.0, "float TIFF", side.get("coverage"))
-    code_max = int(code_max)
-    expected = {255: np.uint8, 65535: np.uint16}.get(code_max)
-    if expected is None or image.dtype != expected:
-        raise ThickbakeError(f"the sidecar says codes go to {code_max} but the image holds {image.dtype}",
-                             path=path, fix="keep each map with the sidecar written beside it")
-    bits = 8 if code_max == 255 else 16
-    values = decode(image, offset, scale, bits)
-    return DecodedMap(path, values, measure, reach, abs(scale), abs(scale) / code_max, f"{bits}-bit PNG",
-                      side.get("coverage"))
+    enc = side.encoding
+    values = enc.decode(image, path)
+    span = side.full_scale if enc.code_max is None else abs(enc.scale)
+    return DecodedMap(path, values, side.measure.name, side.reach, span, enc.step, enc.kind, side.coverage)
 
 
 def compare_maps(a: DecodedMap, b: DecodedMap, tolerance: float | None = None) -> Comparison:

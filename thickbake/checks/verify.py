@@ -209,11 +209,11 @@ def _settings(options: dict | None, where: str):
 
 def _decoded(result) -> np.ndarray:
     """(h·w,) float64 texel values as stored in the image and decoded through the sidecar formula."""
-    from thickbake.maps.encode import decode, decode_coefficients
+    from thickbake.maps.sidecar import Encoding
 
     s = result.settings
-    offset, scale = decode_coefficients(s.measure, s.reach, s.invert)
-    return decode(result.codes(), offset, scale, s.bits).ravel()
+    encoding = Encoding.of(".png", s.measure, s.reach, s.invert, s.bits)
+    return encoding.decode(result.codes(), "(the map in memory)").ravel()
 
 
 def _flat_shaded(asset):

@@ -1,5 +1,7 @@
 """Write stage: images and sidecars, always through a temporary file and an atomic rename.
 
+(What a sidecar holds is :mod:`thickbake.maps.sidecar`'s business; this module only writes the bytes.)
+
 A crash, a kill or a full disk therefore never leaves a half-written map: the destination either
 keeps its old content or gets the complete new one.  The sidecar is renamed last, so a map whose
 sidecar matches it is known to be complete.
@@ -16,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from thickbake.errors import ThickbakeError
+from thickbake.maps.sidecar import described_map, sidecar_path
 
 IMAGE_SUFFIXES = (".png", ".tif", ".tiff", ".exr")
 #: The process umask, read once: ``tempfile.mkstemp`` creates 0600 files, and outputs should get the
@@ -90,11 +93,6 @@ def read_image(path: str | os.PathLike) -> np.ndarray:
                              fix="give a PNG or TIFF written by thickbake") from None
 
 
-def sidecar_path(map_path: str | os.PathLike) -> Path:
-    """The sidecar of ``OUT.png`` is ``OUT.json``."""
-    return Path(map_path).with_suffix(".json")
-
-
 def _check_target(path: Path, what: str) -> None:
     """A file we are about to write must not be a folder, and its folder must be creatable."""
     if path.is_dir():
@@ -124,11 +122,8 @@ def check_output_path(path: str | os.PathLike, error_out: str | os.PathLike | No
     side = sidecar_path(path)
     _check_target(side, "sidecar")
     if side.is_file():
-        try:
-            other = json.loads(side.read_text()).get("map")
-        except (OSError, ValueError, AttributeError):
-            other = None
-        if isinstance(other, str) and other != path.name and (path.parent / other).exists():
+        other = described_map(side)
+        if other is not None and other != path.name and (path.parent / other).exists():
             raise ThickbakeError(f"its sidecar {side.name} already describes {other}", path=path,
                                  fix=f"give this map another name than {other} (maps sharing a stem share a sidecar)")
     if error_out is not None:
@@ -171,15 +166,3 @@ def write_map(path: str | os.PathLike, data: bytes, sidecar: dict,
                 pass
         raise ThickbakeError(f"cannot write the output ({exc.strerror or exc})", path=exc.filename or target,
                              fix="check the folder exists, is writable and has free space") from None
-
-
-def read_sidecar(map_path: str | os.PathLike) -> dict:
-    """Load the sidecar of a map, with a user error if it is missing or broken."""
-    side = sidecar_path(map_path)
-    try:
-        return json.loads(side.read_text())
-    except FileNotFoundError:
-        raise ThickbakeError("the map has no sidecar", path=side,
-                             fix="keep the .json written next to each map by 'thickbake bake'") from None
-    except (OSError, ValueError) as exc:
-        raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=side, fix="bake the map again") from None

@@ -98,7 +98,7 @@ def pack_channels(path: str | os.PathLike, stored: dict[str, np.ndarray], bits: 
 
 def merged_sidecar(path: str | os.PathLike, entries: dict[str, dict], bits: int) -> dict:
     """The packed image's sidecar: earlier channel entries kept, the written ones replaced."""
-    from thickbake.maps.files import sidecar_path
+    from thickbake.maps.sidecar import sidecar_path
     from thickbake.version import __version__
 
     path = Path(path)

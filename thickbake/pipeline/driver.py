@@ -22,7 +22,7 @@ import numpy as np
 
 from thickbake.version import __version__
 from thickbake.pipeline.directions import ray_directions, sample_keys, variates
-from thickbake.maps.encode import decode_coefficients, normalise, quantise
+from thickbake.maps.encode import normalise, quantise
 from thickbake.errors import ThickbakeError
 from thickbake.measures import measure_named
 from thickbake.pipeline.measures import Moments, texel_reduce
@@ -30,6 +30,7 @@ from thickbake.pipeline.load import Asset, load_asset
 from thickbake.pipeline.finish import fit_reach, medium_record, medium_scale
 from thickbake.maps.files import check_output_path, write_map
 from thickbake.maps.padding import pad_map
+from thickbake.maps.sidecar import build_sidecar, with_error_map
 from thickbake.pipeline.trace import RayEngine
 from thickbake.settings import BakeSettings, RunOptions, check_memory, split_options
 from thickbake.pipeline.origins import inward_origins
@@ -101,43 +102,7 @@ class BakeResult:
     def sidecar(self, map_path: str | os.PathLike) -> dict:
         """The sidecar describing the map written at ``map_path`` (PNG codes or float TIFF)."""
         s = self.settings
-        path = Path(map_path)
-        suffix = path.suffix.lower()
-        data = {"thickbake_version": __version__, "map": path.name}
-        data.update(self.info)
-        data["color_space"] = "linear"
-        if "medium" in self.info:
-            data["encoding"] = _medium_encoding(suffix, s.bits)
-            return data
-        if suffix == ".png":
-            offset, scale = decode_coefficients(s.measure, s.reach, s.invert)
-            top = (1 << s.bits) - 1
-            data["encoding"] = {
-                "format": f"PNG, {s.bits}-bit grayscale",
-                "code_max": top,
-                "offset": offset,
-                "scale": scale,
-                "formula": f"{s.measure} = {offset:g} + {scale:g} * code / {top}",
-            }
-        elif suffix == ".exr":
-            data["encoding"] = {
-                "format": "OpenEXR, one channel Y (half or float, see the file's header)",
-                "code_max": None, "offset": 0.0, "scale": 1.0,
-                "formula": f"{s.measure} = value (no scaling, not inverted)",
-            }
-        else:
-            data["encoding"] = {
-                "format": "TIFF, 32-bit float, one channel",
-                "code_max": None, "offset": 0.0, "scale": 1.0,
-                "formula": f"{s.measure} = value (no scaling, not inverted)",
-            }
-        if s.measure == "thickness" and not s.invert and path.suffix.lower() == ".png":
-            data["gltf_hint"] = {
-                "extension": "KHR_materials_volume",
-                "thicknessTexture": "this map; glTF reads thickness from the G channel, which a grayscale image fills",
-                "thicknessFactor": s.reach,
-            }
-        return data
+        return build_sidecar(Path(map_path).name, self.info, s.measure, s.reach, s.invert, s.bits, __version__)
 
     def image(self, suffix: str) -> np.ndarray:
         """The array a map file of this suffix holds: (h, w) uint16/uint8 codes for ``.png``, float32
@@ -180,19 +145,9 @@ class BakeResult:
             extra[Path(error_out)] = self.stderr
         data, sidecar = self.encode(path.name, exr_type=exr_type)
         if error_out is not None:
-            sidecar["error_map"] = Path(error_out).name
+            sidecar = with_error_map(sidecar, error_out)
         write_map(path, data, sidecar, extra)
         return path
-
-
-def _medium_encoding(suffix: str, bits: int) -> dict:
-    """The sidecar's encoding block of an RGB transmittance map."""
-    if suffix == ".png":
-        top = (1 << bits) - 1
-        return {"format": f"PNG, {bits}-bit RGB", "code_max": top, "offset": 0.0, "scale": 1.0,
-                "formula": f"T_channel = code_channel / {top}"}
-    return {"format": "OpenEXR, channels R G B (half or float, see the file's header)", "code_max": None,
-            "offset": 0.0, "scale": 1.0, "formula": "T_channel = value"}
 
 
 @dataclass

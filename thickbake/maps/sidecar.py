@@ -1,0 +1,318 @@
+"""The sidecar: the one JSON schema that says what a map holds and how to decode it, written and read here.
+
+Every map ``OUT.png`` / ``OUT.tif`` has ``OUT.json`` beside it.  This module builds that dict from a
+bake's figures (:func:`build_sidecar`, plus :func:`with_error_map` and :func:`with_batch_record` for
+the optional parts) and reads it back into a typed, validated :class:`Sidecar`
+(:func:`read_sidecar`); nothing else in the package writes or parses sidecar fields.
+
+Schema (the keys this module gives meaning to; the rest are the bake's figures, see README)
+------------------------------------------------------------------------------------------
+``thickbake_version`` str, ``map`` str (the map's file name), ``measure`` (a name of
+:data:`thickbake.measures.MEASURES`), ``units``, ``reach`` (scene units), ``coverage`` (share of
+texels), ``input`` {``file``, ``sha256``}, ``settings`` (map content), ``settings_hash``, ``run``
+(threads, chunk_rays, order), ``color_space`` ("linear") and
+
+* ``encoding``: ``format`` (text), ``code_max`` (255 or 65535 for a PNG, null for a float TIFF),
+  ``offset`` and ``scale`` with ``measure = offset + scale · code / code_max`` (a TIFF or EXR stores
+  the measure itself: offset 0, scale 1), ``formula`` (the same in words), for an EXR ``sample_type``;
+  a bake with a ``medium`` stores RGB transmittance instead (see :func:`medium_encoding_entry`);
+* ``gltf_hint`` (uninverted thickness PNGs): how KHR_materials_volume uses the map;
+* ``error_map``: file name of the standard-error TIFF, when one was written;
+* ``batch``: ``source``, ``requested_settings_hash``, ``inputs_sha256``, ``rules``, ``map_sha256``
+  (what :mod:`thickbake.batch.plan` needs to tell whether the map is up to date).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from thickbake.errors import ThickbakeError
+from thickbake.maps.encode import decode, decode_coefficients
+from thickbake.measures import MEASURES, Measure, measure_named
+
+SIDECAR_SUFFIX = ".json"
+#: The integer code ranges a PNG map may have, by bit depth, and the image type each is stored in.
+CODE_MAX = {8: 255, 16: 65535}
+_CODE_DTYPE = {255: np.uint8, 65535: np.uint16}
+
+
+def sidecar_path(map_path: str | os.PathLike) -> Path:
+    """The sidecar of ``OUT.png`` is ``OUT.json``."""
+    return Path(map_path).with_suffix(SIDECAR_SUFFIX)
+
+
+# ---------------------------------------------------------------------------- writing
+def encoding_entry(suffix: str, measure: str | Measure, reach: float, invert: bool, bits: int) -> dict:
+    """The ``encoding`` entry of a one-channel map file of this suffix (PNG codes, EXR or float TIFF)."""
+    name = measure_named(measure).name
+    suffix = suffix.lower()
+    if suffix == ".png":
+        offset, scale = decode_coefficients(measure, reach, invert)
+        top = (1 << bits) - 1
+        return {
+            "format": f"PNG, {bits}-bit grayscale",
+            "code_max": top,
+            "offset": offset,
+            "scale": scale,
+            "formula": f"{name} = {offset:g} + {scale:g} * code / {top}",
+        }
+    if suffix == ".exr":
+        return {
+            "format": "OpenEXR, one channel Y (half or float, see the file's header)",
+            "code_max": None, "offset": 0.0, "scale": 1.0,
+            "formula": f"{name} = value (no scaling, not inverted)",
+        }
+    return {
+        "format": "TIFF, 32-bit float, one channel",
+        "code_max": None, "offset": 0.0, "scale": 1.0,
+        "formula": f"{name} = value (no scaling, not inverted)",
+    }
+
+
+def medium_encoding_entry(suffix: str, bits: int) -> dict:
+    """The ``encoding`` entry of an RGB transmittance map (a bake with a medium): PNG codes or EXR."""
+    if suffix.lower() == ".png":
+        top = (1 << bits) - 1
+        return {"format": f"PNG, {bits}-bit RGB", "code_max": top, "offset": 0.0, "scale": 1.0,
+                "formula": f"T_channel = code_channel / {top}"}
+    return {"format": "OpenEXR, channels R G B (half or float, see the file's header)", "code_max": None,
+            "offset": 0.0, "scale": 1.0, "formula": "T_channel = value"}
+
+
+def build_sidecar(map_name: str, info: dict, measure: str | Measure, reach: float, invert: bool, bits: int,
+                  version: str) -> dict:
+    """The sidecar of a map called ``map_name`` (its suffix picks the encoding).
+
+    Parameters
+    ----------
+    map_name : str
+        File name of the map.
+    info : dict
+        The bake's figures (``BakeResult.info``), copied in after ``thickbake_version`` and ``map``; a
+        ``medium`` entry makes the map RGB transmittance.
+    measure, reach, invert, bits
+        The resolved settings that decide the encoding (reach in scene units).
+    version : str
+        The thickbake version that baked the map.
+    """
+    suffix = Path(map_name).suffix.lower()
+    data = {"thickbake_version": version, "map": Path(map_name).name}
+    data.update(info)
+    data["color_space"] = "linear"
+    if "medium" in info:
+        data["encoding"] = medium_encoding_entry(suffix, bits)
+        return data
+    data["encoding"] = encoding_entry(suffix, measure, reach, invert, bits)
+    if measure_named(measure).name == "thickness" and not invert and suffix == ".png":
+        data["gltf_hint"] = {
+            "extension": "KHR_materials_volume",
+            "thicknessTexture": "this map; glTF reads thickness from the G channel, which a grayscale image fills",
+            "thicknessFactor": reach,
+        }
+    return data
+
+
+def with_error_map(sidecar: dict, error_map: str | os.PathLike) -> dict:
+    """The sidecar naming the standard-error TIFF written beside the map."""
+    return {**sidecar, "error_map": Path(error_map).name}
+
+
+def with_batch_record(sidecar: dict, record: dict, map_bytes: bytes) -> dict:
+    """The sidecar with a batch's bookkeeping (``record`` plus the sha256 of the map's bytes)."""
+    return {**sidecar, "batch": dict(record, map_sha256=hashlib.sha256(map_bytes).hexdigest())}
+
+
+# ---------------------------------------------------------------------------- reading
+@dataclass(frozen=True)
+class Encoding:
+    """How a map's pixels decode to measure units (the sidecar's ``encoding``).
+
+    Attributes
+    ----------
+    code_max : int or None
+        255 or 65535 for a PNG of codes; None for a float TIFF of the measure itself.
+    offset, scale : float
+        measure = offset + scale · code / code_max (a TIFF: offset + scale · value).
+    """
+
+    code_max: int | None
+    offset: float
+    scale: float
+
+    @classmethod
+    def of(cls, suffix: str, measure: str | Measure, reach: float, invert: bool, bits: int) -> "Encoding":
+        """The encoding :func:`build_sidecar` records for a map file of this suffix."""
+        entry = encoding_entry(suffix, measure, reach, invert, bits)
+        return cls(entry["code_max"], entry["offset"], entry["scale"])
+
+    @property
+    def bits(self) -> int | None:
+        return None if self.code_max is None else (8 if self.code_max == 255 else 16)
+
+    @property
+    def kind(self) -> str:
+        return "float TIFF" if self.code_max is None else f"{self.bits}-bit PNG"
+
+    @property
+    def step(self) -> float:
+        """One code step in measure units (0 for a float TIFF)."""
+        return 0.0 if self.code_max is None else abs(self.scale) / self.code_max
+
+    def decode(self, image: np.ndarray, path: str | os.PathLike) -> np.ndarray:
+        """(h, w) float64 measure values of a map image, after checking it matches this encoding."""
+        if self.code_max is None:
+            if image.dtype.kind != "f":
+                raise ThickbakeError(f"the sidecar describes a float map but the image holds {image.dtype} codes",
+                                     path=path, fix="keep each map with the sidecar written beside it")
+            return self.offset + self.scale * image.astype(np.float64)
+        if image.dtype != _CODE_DTYPE[self.code_max]:
+            raise ThickbakeError(f"the sidecar says codes go to {self.code_max} but the image holds {image.dtype}",
+                                 path=path, fix="keep each map with the sidecar written beside it")
+        return decode(image, self.offset, self.scale, self.bits)
+
+
+@dataclass(frozen=True)
+class BatchRecord:
+    """The ``batch`` entry: what a batch run compares to decide the map is up to date."""
+
+    requested_settings_hash: str | None
+    inputs_sha256: str | None
+    map_sha256: str | None
+
+
+@dataclass(frozen=True)
+class Sidecar:
+    """A validated sidecar.
+
+    Attributes
+    ----------
+    path : Path
+        The ``.json`` file.
+    measure : Measure
+    reach : float or None
+        Scene units.
+    encoding : Encoding
+    coverage : float or None
+        Share of covered texels.
+    version : str or None
+        thickbake version that wrote it.
+    map_name : str or None
+        File name of the map it describes.
+    input_sha256 : str or None
+        sha256 of the mesh file baked.
+    batch : BatchRecord or None
+    data : dict
+        Everything, as read (the bake's figures for reports).
+    """
+
+    path: Path
+    measure: Measure
+    reach: float | None
+    encoding: Encoding
+    coverage: float | None
+    version: str | None
+    map_name: str | None
+    input_sha256: str | None
+    batch: BatchRecord | None
+    data: dict
+
+    @property
+    def full_scale(self) -> float:
+        """The measure's full-scale range: the reach for thickness (1 when it is missing), else 1."""
+        return self.measure.full_scale(self.reach) if self.reach else 1.0
+
+
+def read_sidecar(map_path: str | os.PathLike) -> Sidecar:
+    """Load and validate the sidecar of a map.
+
+    Raises
+    ------
+    ThickbakeError
+        The sidecar is missing, not JSON, or a field the map's decoding needs is missing or has the
+        wrong type (e.g. ``code_max`` "abc"): naming the field and the fix.
+    """
+    side = sidecar_path(map_path)
+    try:
+        data = json.loads(side.read_text("utf-8"))
+    except FileNotFoundError:
+        raise ThickbakeError("the map has no sidecar", path=side,
+                             fix="keep the .json written next to each map by 'thickbake bake'") from None
+    except (OSError, ValueError) as exc:
+        raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=side, fix="bake the map again") from None
+    return parse_sidecar(data, side)
+
+
+def parse_sidecar(data: Any, path: str | os.PathLike) -> Sidecar:
+    """Validate a sidecar dict (see :func:`read_sidecar`); ``path`` names the file in errors."""
+    path = Path(path)
+    if not isinstance(data, dict):
+        raise ThickbakeError("the sidecar is not a JSON object", path=path, fix="bake the map again")
+    measure = data.get("measure")
+    if measure not in MEASURES:
+        raise _bad_field(path, "measure", measure, " or ".join(repr(m) for m in MEASURES))
+    encoding = data.get("encoding")
+    if not isinstance(encoding, dict):
+        raise ThickbakeError("the sidecar has no encoding", path=path, fix="use a map written by 'thickbake bake'")
+    code_max = encoding.get("code_max")
+    if code_max is not None and (isinstance(code_max, bool) or code_max not in _CODE_DTYPE):
+        raise _bad_field(path, "encoding.code_max", code_max, "255 or 65535 (a PNG) or null (a float TIFF)")
+    offset = _number(encoding.get("offset"), path, "encoding.offset")
+    scale = _number(encoding.get("scale"), path, "encoding.scale")
+    reach = data.get("reach")
+    if reach is not None:
+        reach = _number(reach, path, "reach")
+        if not reach > 0:
+            raise _bad_field(path, "reach", reach, "a positive length in scene units")
+    coverage = data.get("coverage")
+    coverage = None if coverage is None else _number(coverage, path, "coverage")
+    source = data.get("input") if isinstance(data.get("input"), dict) else {}
+    batch = data.get("batch")
+    record = None
+    if isinstance(batch, dict):
+        record = BatchRecord(_text(batch.get("requested_settings_hash")), _text(batch.get("inputs_sha256")),
+                             _text(batch.get("map_sha256")))
+    return Sidecar(path=path, measure=measure_named(measure), reach=reach,
+                   encoding=Encoding(None if code_max is None else int(code_max), offset, scale),
+                   coverage=coverage, version=_text(data.get("thickbake_version")), map_name=_text(data.get("map")),
+                   input_sha256=_text(source.get("sha256")), batch=record, data=data)
+
+
+def described_map(sidecar_file: str | os.PathLike) -> str | None:
+    """The ``map`` an existing sidecar names, or None when it is missing, unreadable or names none.
+
+    Lenient on purpose: used before writing, to refuse overwriting the sidecar of a *different* map.
+    """
+    try:
+        other = json.loads(Path(sidecar_file).read_text("utf-8")).get("map")
+    except (OSError, ValueError, AttributeError):
+        return None
+    return other if isinstance(other, str) else None
+
+
+def _number(value: Any, path: Path, name: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise _bad_field(path, name, value, "a finite number")
+    return float(value)
+
+
+def _text(value: Any) -> str | None:
+    return value if isinstance(value, str) else None
+
+
+def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeError:
+    shown = repr(value) if value is not None else "missing"
+    return ThickbakeError(f"the sidecar's {name} is {shown}, not {allowed}", path=path,
+                          fix="keep the sidecar 'thickbake bake' wrote beside the map, or bake the map again")
+
+
+__all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "with_error_map",
+           "with_batch_record", "Encoding", "BatchRecord", "Sidecar", "read_sidecar", "parse_sidecar",
+           "described_map"]
