@@ -10,7 +10,7 @@ The heavy modules load on first use, so ``thickbake --help`` answers at once.
 from thickbake.errors import ThickbakeError
 from thickbake.version import __version__
 
-__all__ = ["__version__", "bake", "BakeResult", "BakeSettings", "ThickbakeError"]
+__all__ = ["__version__", "bake", "bake_maps", "BakeResult", "BakeSettings", "MapKey", "ThickbakeError"]
 
 
 def __getattr__(name):
@@ -18,7 +18,11 @@ def __getattr__(name):
         from thickbake.settings import BakeSettings
 
         return BakeSettings
-    if name in ("bake", "BakeResult"):
+    if name == "MapKey":
+        from thickbake.pipeline.groups import MapKey
+
+        return MapKey
+    if name in ("bake", "bake_maps", "BakeResult"):
         from thickbake.pipeline import driver
 
         return getattr(driver, name)

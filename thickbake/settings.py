@@ -100,6 +100,23 @@ def parse_size(text: str | int | tuple | list) -> tuple[int, int]:
     return int(width), int(height)
 
 
+def parse_blockers(text) -> str:
+    """Normalise a blocker choice: ``"all"``, ``"own"`` or a comma list of names (spaces trimmed)."""
+    if text is None:
+        return "all"
+    if isinstance(text, (list, tuple)):
+        text = ",".join(str(t) for t in text)
+    if not isinstance(text, str):
+        raise ThickbakeError(f"setting blockers = {text!r} is not allowed",
+                             fix="use 'all', 'own' or a comma-separated list of part or material names")
+    names = [t.strip() for t in text.split(",") if t.strip()]
+    if not names:
+        raise ThickbakeError("setting blockers is empty", fix="use 'all', 'own' or part or material names")
+    if len(names) == 1 and names[0] in ("all", "own"):
+        return names[0]
+    return ",".join(names)
+
+
 @dataclass(frozen=True)
 class BakeSettings:
     """Everything that decides the content of a baked map.
@@ -157,6 +174,12 @@ class BakeSettings:
     scene_unit : str or None
         Length of one scene unit (``"1cm"``, ``"1m"``, ``"25.4mm"``) for ``medium``; default 1 m
         for glTF files (glTF 2.0 §3.5.1), required for other formats.
+    uv_set : int
+        UV channel whose layout the maps follow (glTF ``TEXCOORD_n``; OBJ and other formats have 0).
+    blockers : str
+        Which surfaces block a texel's rays: ``"all"`` parts, its ``"own"`` part only, or a comma
+        list of part or material names (plus the texel's own part); see
+        :mod:`thickbake.pipeline.blockers`.
     """
 
     size: tuple[int, int] = (1024, 1024)
@@ -176,6 +199,8 @@ class BakeSettings:
     target_error: float | None = None
     medium: str | None = None
     scene_unit: str | None = None
+    uv_set: int = 0
+    blockers: str = "all"
 
     def __post_init__(self):
         object.__setattr__(self, "size", parse_size(self.size))
@@ -202,6 +227,8 @@ class BakeSettings:
         _check_choice(self, "sequence", SEQUENCES)
         _check_optional_positive(self, "target_error")
         _check_medium(self)
+        _check_int(self, "uv_set", 0, 255)
+        object.__setattr__(self, "blockers", parse_blockers(self.blockers))
         check_memory(self, RunOptions())
 
     # ------------------------------------------------------------------ construction helpers
@@ -447,4 +474,4 @@ def _check_optional_positive(obj, name: str) -> None:
 
 __all__ = ["BakeSettings", "RunOptions", "settings_from_mapping", "split_options", "check_memory", "MEASURES", "LOBES",
            "SEQUENCES", "ORDERS", "CONTENT_KEYS", "RUN_KEYS", "OPTION_KEYS", "default_pad", "parse_size",
-           "estimate_bytes", "FIT_PERCENTILE", "parse_reach"]
+           "parse_blockers", "estimate_bytes", "FIT_PERCENTILE", "parse_reach"]

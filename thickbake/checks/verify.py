@@ -523,7 +523,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
         options apply;
         the mean-chord bake overrides cone, lobe, measure, reach and invert.
     """
-    from thickbake.pipeline.driver import bake
+    from thickbake.pipeline.driver import bake_maps
     from thickbake.checks.meshcheck import face_orientation, front_face_hits
     from thickbake.pipeline.load import load_asset
     from thickbake.pipeline.trace import make_engine
@@ -599,24 +599,31 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
 
     # the bake for UV figures and the mean chord
     flat = _flat_shaded(asset)
-    result = bake(flat, settings, run, engine=engine)
+    maps = bake_maps(flat, settings, run, engine=engine)
+    result = maps[0]
     s = result.settings
     info = result.info
-    cov_note = f"{info['coverage']:.1%} of the {s.width}x{s.height} texels are covered"
+    coverage_share = float(np.mean([m.info["coverage"] for m in maps]))
+    cov_note = f"{coverage_share:.1%} of the {s.width}x{s.height} texels are covered"
+    if len(maps) > 1:
+        cov_note += f" on average over the asset's {len(maps)} maps (one per material and UDIM tile)"
     uv_status = INFO
-    if rep.faces_without_uv or rep.uv_outside_unit_square > 1e-6:
+    if rep.faces_without_uv:
         uv_status = WARN
-        cov_note += (f"; {rep.faces_without_uv:,} faces have no UVs and {rep.uv_outside_unit_square:.1%} of the UV "
-                     "area lies outside the 0–1 square: those parts get no texels")
-    checks.append(Check(name, "UV coverage", uv_status, measured=info["coverage"], note=cov_note))
-    overlap = float(info.get("overlap", 0.0))
+        cov_note += f"; {rep.faces_without_uv:,} faces have no UVs: they get no texels — unwrap them if they need a map"
+    if rep.degenerate_faces:
+        uv_status = WARN
+        cov_note += (f"; {rep.degenerate_faces:,} degenerate (zero-area) triangles: delete them (merge vertices by "
+                     "distance) and export again")
+    checks.append(Check(name, "UV coverage", uv_status, measured=coverage_share, note=cov_note))
+    overlap = float(max(m.info.get("overlap", 0.0) for m in maps))
     overlapping = overlap > OVERLAP_WARN
     checks.append(Check(name, "UV overlap", WARN if overlapping else INFO, measured=overlap, tolerance=OVERLAP_WARN,
                         note=(f"{overlap:.2%} of covered texels are claimed by more than one triangle (stacked or "
                               "mirrored islands): they average every surface mapped there — give parts of different "
                               "thickness their own UV space" if overlapping else
                               f"{overlap:.2%} of covered texels claimed twice")))
-    per_texel = result.area[result.area > 0].astype(np.float64)
+    per_texel = np.concatenate([m.area[m.area > 0].astype(np.float64) for m in maps])
     p5, p95 = (np.percentile(per_texel, [5, 95]) if per_texel.size else (0.0, 0.0))
     spread = p95 / p5 if p5 > 0 else math.inf
     checks.append(Check(name, "texel density spread p95/p5", WARN if spread > DENSITY_SPREAD_WARN else INFO,
@@ -628,12 +635,16 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
 
     # Cauchy's mean chord
     unsampled = 0.0
-    if rep.area > 0:
+    if rep.area > 0 and len(maps) == 1:
         from thickbake.checks.coverage import exact_texel_coverage
 
         coverage = exact_texel_coverage(flat, s.width, s.height)
         unsampled = max(0.0, 1.0 - coverage.face_covered.sum() / rep.area)
-    if unsampled > UNSAMPLED_LIMIT:
+    if len(maps) > 1:
+        checks.append(Check(name, "Cauchy mean chord 4V/S", SKIP,
+                            note=f"not applicable: the asset bakes into {len(maps)} maps (per material and UDIM tile); "
+                                 "the check needs the whole surface in one layout"))
+    elif unsampled > UNSAMPLED_LIMIT:
         checks.append(Check(name, "Cauchy mean chord 4V/S", SKIP,
                             note=f"not applicable: {unsampled:.1%} of the surface has no texels (no UVs or UVs "
                                  "outside the 0–1 square)"))

@@ -112,12 +112,29 @@ def build_sidecar(map_name: str, info: dict, measure: str | Measure, reach: floa
         return data
     data["encoding"] = encoding_entry(suffix, measure, reach, invert, bits)
     if measure_named(measure).name == "thickness" and not invert and suffix == ".png":
-        data["gltf_hint"] = {
-            "extension": "KHR_materials_volume",
-            "thicknessTexture": "this map; glTF reads thickness from the G channel, which a grayscale image fills",
-            "thicknessFactor": reach,
-        }
+        data["gltf_hint"] = gltf_hint(reach, info.get("local_units"))
     return data
+
+
+def gltf_hint(reach: float, local_units: dict | None) -> dict:
+    """The KHR_materials_volume hint of a non-inverted thickness PNG.
+
+    glTF thickness is in the mesh's own coordinate space, so the world reach of the top code is
+    divided by the node scale of the map's faces (``local_units["world_per_local"]``, see
+    :func:`thickbake.pipeline.groups.local_units`); with no single scale there is no factor.
+    """
+    units = local_units or {}
+    scale = units.get("world_per_local", 1.0) if units else 1.0
+    hint = {
+        "extension": "KHR_materials_volume",
+        "thicknessTexture": "this map; glTF reads thickness from the G channel, which a grayscale image fills",
+        "thicknessFactor": float(reach) / scale if scale else None,
+        "units": "the mesh's own coordinate space (world thickness divided by the node scale)",
+        "node_scales": units.get("node_scales", [1.0]),
+    }
+    if hint["thicknessFactor"] is None:
+        hint["why_no_factor"] = units.get("why")
+    return hint
 
 
 def with_error_map(sidecar: dict, error_map: str | os.PathLike) -> dict:
@@ -313,6 +330,6 @@ def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeErro
                           fix="keep the sidecar 'thickbake bake' wrote beside the map, or bake the map again")
 
 
-__all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "with_error_map",
+__all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint", "with_error_map",
            "with_batch_record", "Encoding", "BatchRecord", "Sidecar", "read_sidecar", "parse_sidecar",
            "described_map"]

@@ -33,6 +33,8 @@ from thickbake.maps.padding import pad_map
 from thickbake.maps.sidecar import build_sidecar, with_error_map
 from thickbake.pipeline.trace import RayEngine
 from thickbake.settings import BakeSettings, RunOptions, check_memory, split_options
+from thickbake.pipeline.blockers import build_engines
+from thickbake.pipeline.groups import MapGroup, MapKey, local_units, map_groups
 from thickbake.pipeline.origins import inward_origins
 from thickbake.pipeline.texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
 
@@ -68,6 +70,8 @@ class BakeResult:
         Figures for the sidecar (coverage, stats, timings, mesh report, input file).
     run : RunOptions
         How it ran (threads filled in).
+    key : MapKey or None
+        Which (material, UV set, UDIM tile) of the asset the map holds.
     """
 
     values: np.ndarray
@@ -78,6 +82,22 @@ class BakeResult:
     settings: BakeSettings
     info: dict = field(default_factory=dict)
     run: RunOptions = field(default_factory=RunOptions)
+    key: MapKey | None = None
+
+    @property
+    def world_per_local(self) -> float | None:
+        """Scene units per unit of the mesh's own coordinates (the node scale), None when the map's
+        faces sit under different or uneven scales."""
+        return (self.info.get("local_units") or {}).get("world_per_local", 1.0)
+
+    @property
+    def local_thickness_factor(self) -> float | None:
+        """KHR_materials_volume ``thicknessFactor`` for this map as a non-inverted thickness PNG: the
+        reach in the mesh's own units (glTF thickness is in the mesh's coordinate space), or None."""
+        scale = self.world_per_local
+        if self.settings.measure != "thickness" or self.settings.invert or not scale:
+            return None
+        return float(self.settings.reach) / scale
 
     def padded(self) -> np.ndarray:
         """(h, w) float32 values with seam padding applied (covered texels unchanged)."""
@@ -157,7 +177,8 @@ class _Context:
     asset: Asset
     settings: BakeSettings
     run: RunOptions
-    engine: RayEngine
+    engines: list
+    engine_of_face: np.ndarray
     tri_px: np.ndarray
     jacobian: np.ndarray
     tile: int
@@ -167,16 +188,21 @@ class _Context:
     area: np.ndarray
     rays: np.ndarray
     claims: np.ndarray
+    key: MapKey
+    faces: np.ndarray
+    escape_distance: float
 
 
 #: Figures each tile reports, summed over the bake.
-_TALLY_KEYS = ("rays", "misses", "overlapped", "samples", "rays_cap", "origins_moved", "origins_outside")
+_TALLY_KEYS = ("rays", "misses", "escapes", "overlapped", "samples", "rays_cap", "origins_moved", "origins_outside")
 
 
 def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = None, *,
          progress: Callable[[float, int], None] | None = None, engine: RayEngine | None = None,
          **options) -> BakeResult:
-    """Bake a thickness-type map of a UV-mapped mesh.
+    """Bake a thickness-type map of a UV-mapped mesh whose faces make one map.
+
+    An asset with several materials or UDIM tiles makes several maps: use :func:`bake_maps`.
 
     Parameters
     ----------
@@ -197,6 +223,11 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
     -------
     BakeResult
 
+    Raises
+    ------
+    ThickbakeError
+        The asset makes more than one map (the message names them).
+
     Examples
     --------
     >>> import thickbake
@@ -205,6 +236,43 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
     >>> bool(abs(result.values[result.covered].mean() - 2.0) < 0.01)
     True
     """
+    asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
+    settings, run = _with_options(settings, run, options)
+    groups, _ = map_groups(asset, settings.uv_set)
+    if len(groups) > 1:
+        names = ", ".join(_key_text(g.key) for g in groups[:6]) + (" ..." if len(groups) > 6 else "")
+        raise ThickbakeError(f"the asset makes {len(groups)} maps ({names}), not one", path=asset.path or asset.name,
+                             fix="bake it with thickbake.bake_maps (the command line writes one file per map)")
+    return bake_maps(asset, settings, run, progress=progress, engine=engine)[0]
+
+
+def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None = None, *,
+              progress: Callable[[float, int], None] | None = None, engine: RayEngine | None = None,
+              **options) -> list[BakeResult]:
+    """Bake one map per (material, UV set, UDIM tile) of a UV-mapped mesh.
+
+    Each map rasterises only its own faces (UVs shifted into its tile's unit square), so UV overlap
+    is judged within a map; every map traces against the blockers ``settings.blockers`` chooses
+    (all parts by default).
+
+    Parameters
+    ----------
+    mesh, settings, run, progress, engine, **options
+        As :func:`bake`; ``engine`` is used for ``blockers = "all"`` only.
+
+    Returns
+    -------
+    list of BakeResult
+        In material order (faces without material last), then tile; ``result.key`` says which.
+
+    Examples
+    --------
+    >>> import thickbake
+    >>> from thickbake.checks import shapes
+    >>> maps = thickbake.bake_maps(shapes.sphere(radius=1.0).mesh, size=32, rays=4)
+    >>> [(m.key.material, m.key.uv_set, m.key.tile) for m in maps]
+    [('grey', 0, None)]
+    """
     start = time.perf_counter()
     settings, run = _with_options(settings, run, options)
     asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
@@ -212,18 +280,46 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
     mm_per_unit = medium_scale(settings, asset.path)  # a missing unit is refused before any tracing
     s = settings.resolve(asset.diagonal)
     r = run.resolve()
-    if engine is None:
-        from thickbake.pipeline.trace import make_engine
-        engine = make_engine(asset.trace_vertices, asset.trace_faces)
-    ctx, tiles, starts, members = _prepare(asset, s, r, engine)
+    groups, group_warnings = map_groups(asset, s.uv_set)
+    from thickbake.pipeline.trace import make_engine
+
+    engines, engine_of_face = build_engines(asset, s.blockers, make_engine, engine)
+    setup = time.perf_counter() - start
+    weights = np.array([float(g.faces.sum()) for g in groups])
+    weights = weights / weights.sum()
+    done_before = np.r_[0.0, np.cumsum(weights)]
+    traced_before = [0]
+    results = []
+    for i, group in enumerate(groups):
+        def map_progress(fraction, rays, i=i):
+            if progress is not None:
+                progress(float(done_before[i] + weights[i] * fraction), traced_before[0] + rays)
+        result = _bake_map(asset, s, r, group, engines, engine_of_face, map_progress, setup if i == 0 else 0.0)
+        traced_before[0] += result.info["rays_traced"]
+        if group_warnings:
+            result.info["warnings"] = list(group_warnings) + result.info["warnings"]
+        results.append(result)
+    return results
+
+
+def _key_text(key: MapKey) -> str:
+    return (f"material {key.material_label}" + (f" tile {key.tile}" if key.tile is not None else "")
+            + (f" UV set {key.uv_set}" if key.uv_set else ""))
+
+
+def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engines, engine_of_face, progress,
+              setup_seconds: float) -> BakeResult:
+    """Bake the map of one group of faces (all of the asset's engines shared)."""
+    start = time.perf_counter() - setup_seconds
+    ctx, tiles, starts, members = _prepare(asset, s, r, group, engines, engine_of_face)
     setup_seconds = time.perf_counter() - start
     totals = _run_tiles(ctx, tiles, starts, members, progress)
     trace_seconds = time.perf_counter() - start - setup_seconds
 
     covered = ctx.claims > 0
     if not covered.any():
-        raise ThickbakeError("no texel of the map is covered by the UV layout", path=asset.path,
-                             fix="check the UVs lie inside the 0–1 square")
+        raise ThickbakeError(f"no texel of the map ({_key_text(group.key)}) is covered by the UV layout",
+                             path=asset.path, fix="check the UVs lie inside the 0–1 square or in UDIM tiles")
     timing = {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)}
     info = _bake_info(ctx, covered, totals, time.perf_counter() - start, timing)
     if fit:
@@ -233,7 +329,7 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
     if mm_per_unit is not None:
         info["medium"] = medium_record(s, mm_per_unit)
     return BakeResult(values=ctx.values, covered=covered, stderr=ctx.stderr, area=ctx.area, rays=ctx.rays,
-                      settings=s, info=info, run=r)
+                      settings=s, info=info, run=r, key=group.key)
 
 
 def _with_options(settings: BakeSettings | None, run: RunOptions | None,
@@ -252,19 +348,22 @@ def _with_options(settings: BakeSettings | None, run: RunOptions | None,
     return settings, run
 
 
-def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, engine: RayEngine):
-    """The shared context of a bake and its tiles: (context, tiles, starts, members) of :func:`tile_buckets`."""
+def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engines, engine_of_face):
+    """The shared context of one map and its tiles: (context, tiles, starts, members) of :func:`tile_buckets`."""
     width, height = s.size
-    tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, asset.triangle_uv, asset.has_uv, width, height)
+    tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, group.triangle_uv, group.faces, width, height)
     rays_per_sample = 1 if s.cone == 0 else s.rays
     tile = _tile_side(r.chunk_rays, rays_per_sample, s.supersample, width, height)
     tiles, starts, members = tile_buckets(tri_px, valid, width, height, tile)
     ctx = _Context(
-        asset=asset, settings=s, run=r, engine=engine, tri_px=tri_px, jacobian=jacobian, tile=tile,
-        rays_per_sample=rays_per_sample,
+        asset=asset, settings=s, run=r, engines=engines, engine_of_face=engine_of_face, tri_px=tri_px,
+        jacobian=jacobian, tile=tile, rays_per_sample=rays_per_sample,
         values=np.zeros((height, width), np.float32), stderr=np.zeros((height, width), np.float32),
         area=np.zeros((height, width), np.float32), rays=np.zeros((height, width), np.int32),
-        claims=np.zeros((height, width), np.uint16),
+        claims=np.zeros((height, width), np.uint16), key=group.key, faces=group.faces,
+        # rays from inside a closed solid meet a wall within the bounding-box diagonal (plus the
+        # start offset); one that travels further has left the mesh
+        escape_distance=asset.diagonal * (1.0 + ESCAPE_MARGIN) + 2.0 * s.bias,
     )
     return ctx, tiles, starts, members
 
@@ -305,8 +404,8 @@ def _bake_info(ctx: _Context, covered: np.ndarray, totals: dict, seconds: float,
     s, asset = ctx.settings, ctx.asset
     width, height = s.size
     n_covered = int(covered.sum())
-    warnings = bake_warnings(totals["misses"] / max(totals["rays"], 1), totals["overlapped"] / n_covered,
-                             totals["origins_outside"])
+    escape_fraction = totals["escapes"] / max(totals["rays"], 1)
+    warnings = bake_warnings(escape_fraction, totals["overlapped"] / n_covered, totals["origins_outside"])
     vals = ctx.values[covered].astype(np.float64)
     errs = ctx.stderr[covered].astype(np.float64)
     return {
@@ -317,11 +416,14 @@ def _bake_info(ctx: _Context, covered: np.ndarray, totals: dict, seconds: float,
         "size": [width, height],
         "rays": s.rays,
         "rays_per_sample": ctx.rays_per_sample,
+        "map_of": ctx.key.to_dict(),
+        "blockers": s.blockers,
         "coverage": n_covered / (width * height),
         "overlap": totals["overlapped"] / n_covered,
         "stats": {"min": float(vals.min()), "mean": float(vals.mean()), "max": float(vals.max())},
         "stderr_p95": float(np.percentile(errs, 95)),
         "miss_fraction": totals["misses"] / max(totals["rays"], 1),
+        "escape_fraction": escape_fraction,
         "rays_traced": int(totals["rays"]),
         "rays_saved": int(totals["rays_cap"] - totals["rays"]),
         "surface_samples": int(totals["samples"]),
@@ -329,9 +431,10 @@ def _bake_info(ctx: _Context, covered: np.ndarray, totals: dict, seconds: float,
         "origins_outside": int(totals["origins_outside"]),
         "seconds": round(seconds, 3),
         "rays_per_second": totals["rays"] / max(seconds, 1e-9),
-        "engine": getattr(ctx.engine, "name", type(ctx.engine).__name__),
+        "engine": getattr(ctx.engines[0], "name", type(ctx.engines[0]).__name__),
         "input": {"file": asset.name, "sha256": asset.sha256},
         "mesh": asset.report.to_dict(),
+        "local_units": local_units(asset.face_scale, ctx.faces),
         "settings": s.to_dict(),
         "settings_hash": s.content_hash(),
         "run": ctx.run.to_dict(),
@@ -340,6 +443,9 @@ def _bake_info(ctx: _Context, covered: np.ndarray, totals: dict, seconds: float,
     }
 
 
+#: A ray still travelling after the bounding-box diagonal plus this share of it has left the mesh:
+#: no chord of a solid inside its box is longer than the diagonal; the margin absorbs round-off.
+ESCAPE_MARGIN = 1e-3
 #: Above these shares a bake says something is off (judgement calls, no published source): most rays
 #: leaving the mesh means it has no inside (a single-sided card or an open sheet); a tenth of the
 #: texels claimed twice means stacked islands or several UV sets sharing one map.
@@ -347,17 +453,21 @@ ESCAPE_WARNING_SHARE = 0.5
 OVERLAP_WARNING_SHARE = 0.1
 
 
-def bake_warnings(miss_fraction: float, overlap: float, origins_outside: int) -> list[str]:
-    """Plain-words warnings about a finished bake (empty when nothing looks wrong)."""
+def bake_warnings(escape_fraction: float, overlap: float, origins_outside: int) -> list[str]:
+    """Plain-words warnings about a finished bake (empty when nothing looks wrong).
+
+    ``escape_fraction`` counts rays that left the mesh (no hit at any distance), not rays that merely
+    went past the reach, so an occlusion bake of a closed mesh warns about nothing.
+    """
     out = []
-    if miss_fraction > ESCAPE_WARNING_SHARE:
-        out.append(f"{miss_fraction:.0%} of the rays left the mesh without hitting it, so most texels read the full "
+    if escape_fraction > ESCAPE_WARNING_SHARE:
+        out.append(f"{escape_fraction:.0%} of the rays left the mesh without hitting it, so most texels read the full "
                    "reach: the mesh has no inside (a single-sided card or an open sheet?) - give it thickness or "
                    "close it, or bake such cards with a short --reach")
     if overlap > OVERLAP_WARNING_SHARE:
         out.append(f"{overlap:.0%} of the covered texels are claimed by more than one surface point (stacked or "
                    "mirrored UV islands, or several objects each with their own 0-1 UVs); those texels average them "
-                   "- bake such objects separately if they need their own maps")
+                   "- give such objects their own material (one map each) or their own UV space")
     if origins_outside:
         out.append(f"{origins_outside} samples could not start inside the solid even with a tiny offset "
                    "(intersecting or inside-out parts?) - run 'thickbake verify' on the mesh")
@@ -396,14 +506,31 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray)
     samples, overlapped = rasterise_tile(ctx.tri_px[members], members, ctx.jacobian[members], tile_row, tile_col,
                                          ctx.tile, width, s.height, s.supersample)
     n = len(samples)
+    tally = dict.fromkeys(_TALLY_KEYS, 0)
     if n == 0:
-        return dict.fromkeys(_TALLY_KEYS, 0)
+        return tally
     if ctx.run.order == "morton":
         samples = samples.take(morton_order(samples.texel, width))
     positions, normals = place_samples(asset.triangles, asset.triangle_normals, asset.face_normals, samples, s.bias)
     keys = sample_keys(samples.texel, samples.sub, samples.face)
-    origins, sample_bias, unresolved = inward_origins(ctx.engine, positions, normals, asset.face_normals, s.bias)
-    moments, traced, misses = _trace_samples(ctx, keys, origins, sample_bias, (-normals).astype(np.float32))
+    # Rays start behind the sample's own face plane, offset along the face normal: a shading normal
+    # tilted far from its face (smoothed rims, bent file normals) would otherwise put the origin on
+    # the wrong side of a neighbouring face.  The lobe stays about the shading normal.
+    face_normals = asset.face_normals[samples.face]
+    flat = ~(np.abs(face_normals).sum(axis=1) > 0)
+    face_normals = np.where(flat[:, None], normals, face_normals)
+    axis = (-normals).astype(np.float32)
+    moments = Moments(n)
+    engine_of_sample = ctx.engine_of_face[samples.face]
+    for which in np.unique(engine_of_sample):
+        engine = ctx.engines[int(which)]
+        mine = np.flatnonzero(engine_of_sample == which)
+        origins, sample_bias, unresolved = inward_origins(engine, positions[mine], face_normals[mine],
+                                                          asset.face_normals, s.bias)
+        tally["origins_moved"] += int((sample_bias < s.bias).sum())
+        tally["origins_outside"] += unresolved
+        inward = (-face_normals[mine]).astype(np.float32)
+        _trace_samples(ctx, engine, mine, keys[mine], origins, sample_bias, inward, axis[mine], moments, tally)
     texels, mean, stderr, area, claims, rays = texel_reduce(samples.texel, moments.mean(), moments.stderr(),
                                                             samples.area, moments.count)
     rows, cols = texels // width, texels % width
@@ -412,40 +539,37 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray)
     ctx.area[rows, cols] = area
     ctx.rays[rows, cols] = rays
     ctx.claims[rows, cols] = np.minimum(claims, 65535)
-    return {"rays": traced, "misses": misses, "overlapped": overlapped, "samples": n,
-            "rays_cap": n * ctx.rays_per_sample, "origins_moved": int((sample_bias < s.bias).sum()),
-            "origins_outside": unresolved}
+    tally.update(overlapped=overlapped, samples=n, rays_cap=n * ctx.rays_per_sample)
+    return tally
 
 
-def _trace_samples(ctx: _Context, keys: np.ndarray, origins: np.ndarray, sample_bias: np.ndarray,
-                   axis: np.ndarray) -> tuple[Moments, int, int]:
-    """Trace every sample's rays in engine-sized calls (batches of doubling size when adaptive).
+def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np.ndarray, origins: np.ndarray,
+                   sample_bias: np.ndarray, inward: np.ndarray, axis: np.ndarray, moments: Moments,
+                   tally: dict) -> None:
+    """Trace the rays of some samples against one engine in engine-sized calls (batches of doubling
+    size when adaptive) and add their values to ``moments``.
 
     Parameters
     ----------
-    keys : (n,) uint64
+    index : (m,) int64
+        Rows of ``moments`` (samples of the tile) these samples are.
+    keys : (m,) uint64
         Sample keys (:func:`sample_keys`).
-    origins : (n, 3) float32
-        Ray origins inside the surface, scene units.
-    sample_bias : (n,) float32
-        How far inside each origin lies, scene units.
-    axis : (n, 3) float32
-        Unit inward normal of each sample (the lobe axis).
-
-    Returns
-    -------
-    moments : Moments
-        Per-sample running sums of the measure's per-ray values.
-    traced, misses : int
-        Rays traced, and of those the ones that hit nothing within reach.
+    origins : (m, 3) float32
+        Ray origins behind the sample's face, scene units.
+    sample_bias : (m,) float32
+        How far behind the face each origin lies, scene units.
+    inward : (m, 3) float32
+        Unit inward face normal (the direction of the offset).
+    axis : (m, 3) float32
+        Unit inward shading normal of each sample (the lobe axis).
+    tally : dict
+        ``rays``, ``misses`` (no hit within reach) and ``escapes`` (no hit at all) are added to it.
     """
     s = ctx.settings
     measure = measure_named(s.measure)
-    n = len(keys)
-    moments = Moments(n)
-    misses = 0
-    traced = 0
-    active = np.arange(n)
+    far = max(float(s.reach), ctx.escape_distance)
+    active = np.arange(len(index))
     adaptive = s.target_error is not None
     for ray_start, ray_stop in _ray_schedule(ctx.rays_per_sample, adaptive):
         k = ray_stop - ray_start
@@ -453,20 +577,31 @@ def _trace_samples(ctx: _Context, keys: np.ndarray, origins: np.ndarray, sample_
         for lo in range(0, len(active), per_call):
             idx = active[lo:lo + per_call]
             u1, u2 = variates(s.seed, keys[idx], ray_start, ray_stop, s.sequence)
-            directions, cos_theta = ray_directions(u1, u2, axis[idx], s.cone, s.lobe)
+            directions, _ = ray_directions(u1, u2, axis[idx], s.cone, s.lobe)
             ray_origins = np.repeat(origins[idx], k, axis=0)
-            distance, hit = ctx.engine.first_hit(ray_origins, directions, s.reach)
-            # chord from the surface point rather than the biased origin: adding bias·cosθ removes the
-            # bias exactly along the normal; off the normal a residual of order bias·(1−cos²θ)/cosθ
-            # remains, whose sign depends on the curvature at the exit (no universal correction)
-            chord = distance.reshape(len(idx), k) + sample_bias[idx, None] * cos_theta
-            hit = hit.reshape(len(idx), k)
-            moments.add(idx, measure.ray_values(chord, hit, s.reach, s.attenuation_distance))
-            misses += int(hit.size - np.count_nonzero(hit))
-            traced += hit.size
+            distance, hit_any = engine.first_hit(ray_origins, directions, far)
+            # chord from the surface point rather than the offset origin: the origin lies
+            # bias·(d · −n_face) further along the ray, so adding that removes the offset exactly for
+            # a ray that leaves through a wall parallel to the face; otherwise a residual of order
+            # bias·(1 − cos²)/cos remains, whose sign depends on the curvature at the exit
+            along = np.einsum("nkj,nj->nk", directions.reshape(len(idx), k, 3), inward[idx])
+            distance = distance.reshape(len(idx), k)
+            # a lobe about a tilted shading normal holds directions that point out through the
+            # sample's own face: from the surface point such a ray leaves the solid at once (chord 0,
+            # the bias → 0 limit), whereas from the offset origin it would cross the face plane
+            # b/cos further on, possibly beyond the triangle's edge, and read a chord or an escape
+            leaves = along <= 0
+            hit_any = hit_any.reshape(len(idx), k) | leaves
+            distance = np.where(leaves, np.float32(0), distance)
+            hit = hit_any & (distance < s.reach)
+            chord = np.where(leaves, np.float32(0), distance + sample_bias[idx, None] * along)
+            moments.add(index[idx], measure.ray_values(chord, hit, s.reach, s.attenuation_distance))
+            tally["misses"] += int(hit.size - np.count_nonzero(hit))
+            tally["escapes"] += int(hit_any.size - np.count_nonzero(hit_any))
+            tally["rays"] += hit.size
         if adaptive:
-            more = (moments.stderr()[active] > s.target_error) & (moments.count[active] < ctx.rays_per_sample)
+            rows = index[active]
+            more = (moments.stderr()[rows] > s.target_error) & (moments.count[rows] < ctx.rays_per_sample)
             active = active[more]
             if len(active) == 0:
                 break
-    return moments, traced, misses

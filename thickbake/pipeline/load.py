@@ -8,12 +8,20 @@ them by position makes a closed solid closed again, so inward rays cannot slip o
 
 Conventions
 -----------
-* Positions are world space in scene units: every scene node's transform is applied.  A node whose
+* Positions are world space in scene units, every scene node's transform applied, then *re-centred*
+  on the bounding-box centre (``Asset.centre``, float64) before anything is cast to float32 for the
+  ray engine: float32 keeps ~7 significant digits, so an asset 10⁶ times its own size from the world
+  origin would otherwise lose its shape to rounding.  Thickness does not depend on where the solid
+  is, so nothing downstream needs the shift back; a node whose
   transform has a negative determinant mirrors its triangles, so their winding is reversed to keep
   them outward-facing (glTF 2.0 §3.7.4, "the determinant of the node's global transform defines the
   winding order").
-* UVs follow the OBJ convention (v up).  trimesh flips glTF's V on load, so glTF and OBJ files of the
-  same asset give the same UVs here.
+* UVs follow the OBJ convention (v up); glTF's V is flipped on load, so glTF and OBJ files of the
+  same asset give the same UVs here.  Every UV set is kept (``Asset.uv_sets``); the fields
+  ``triangle_uv``/``has_uv`` are set 0.
+* Each face knows its material (``face_material``), the part it belongs to (``face_part``: glTF
+  node/primitive, OBJ object/group, scene geometry) and the uniform scale of its node
+  (``face_scale``, NaN when uneven), for per-material maps, ray blockers and glTF units.
 * The face winding defines outside.  A mesh whose volume is negative (inside-out) is flipped as a
   whole, and reported; shading normals are later oriented to agree with the face they lie on.
 """
@@ -21,6 +29,7 @@ Conventions
 from __future__ import annotations
 
 import hashlib
+import math
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,6 +37,7 @@ from pathlib import Path
 import numpy as np
 
 from thickbake.errors import ThickbakeError
+from thickbake.pipeline.readers import Material, Part, ReadResult, apply_transform, read_gltf, read_obj, transform_scale
 
 MESH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply", ".off", ".stl")
 #: Vertices closer than this fraction of the bounding-box diagonal are merged for tracing.  Seam
@@ -58,6 +68,10 @@ class MeshReport:
     normals_from_file: bool
     faces_without_uv: int
     uv_outside_unit_square: float
+    degenerate_faces: int = 0
+    uv_sets: int = 1
+    materials: int = 1
+    parts: int = 1
     warnings: list[str] = field(default_factory=list)
 
     def to_dict(self) -> dict:
@@ -84,6 +98,18 @@ class Asset:
         Position-merged vertices for the ray engine.
     trace_faces : (f, 3) int64
         Triangles over ``trace_vertices``; row i is the same triangle as ``triangles[i]``.
+    centre : (3,) float64
+        World position of the bounding-box centre that every position above is relative to.
+    uv_sets : list of (f, 3, 2) float64
+        Corner UVs of each UV set, NaN for faces without UVs in that set.
+    face_material : (f,) int64
+        Index into ``materials`` (:class:`thickbake.pipeline.readers.Material`).
+    face_part : (f,) int64
+        Index into ``parts`` (part names) and ``part_aliases`` (names a blocker list may use).
+    face_scale : (f,) float64
+        Uniform local-to-world scale of the node each face belongs to (NaN: uneven scale).
+    face_mesh : (f,) int64
+        Which mesh each face instances (two nodes showing one glTF mesh share a value).
     """
 
     triangles: np.ndarray
@@ -97,6 +123,15 @@ class Asset:
     name: str = "mesh"
     path: str | None = None
     sha256: str | None = None
+    centre: np.ndarray = field(default_factory=lambda: np.zeros(3))
+    uv_sets: list = field(default_factory=list)
+    face_material: np.ndarray | None = None
+    materials: list = field(default_factory=list)
+    face_part: np.ndarray | None = None
+    parts: list = field(default_factory=list)
+    part_aliases: list = field(default_factory=list)
+    face_scale: np.ndarray | None = None
+    face_mesh: np.ndarray | None = None
 
     @property
     def bounds(self) -> np.ndarray:
@@ -108,6 +143,17 @@ class Asset:
         """Length of the bounding-box diagonal, scene units."""
         lo, hi = self.bounds
         return float(np.linalg.norm(hi - lo))
+
+    def uv_set(self, index: int) -> tuple[np.ndarray, np.ndarray]:
+        """(f, 3, 2) corner UVs of UV set ``index`` (0 where a face has none) and the (f,) bool faces that have them."""
+        sets = self.uv_sets or [np.where(self.has_uv[:, None, None], self.triangle_uv, np.nan)]
+        if not (0 <= index < len(sets)) or not np.isfinite(sets[index]).any():
+            have = [i for i, uv in enumerate(sets) if np.isfinite(uv).any()]
+            raise ThickbakeError(f"the mesh has no UV set {index} (it has {', '.join(map(str, have))})",
+                                 path=self.path or self.name, fix=f"choose one of those with --uv-set")
+        uv = sets[index]
+        has = np.isfinite(uv).all(axis=(1, 2))
+        return np.where(has[:, None, None], uv, 0.0), has
 
 
 def file_sha256(path: str | os.PathLike) -> str:
@@ -125,17 +171,18 @@ def load_asset(source, name: str | None = None) -> Asset:
     Parameters
     ----------
     source : str, os.PathLike, trimesh.Trimesh or trimesh.Scene
-        A mesh file (OBJ, glTF/GLB, PLY, ...) or an in-memory mesh/scene with UVs.
+        A mesh file (OBJ, glTF/GLB, PLY, ...) or an in-memory mesh/scene with UVs.  glTF and OBJ
+        files are read by :mod:`thickbake.pipeline.readers` (every UV set, materials, parts); other
+        formats and in-memory objects through trimesh (UV set 0, one material per geometry).
     name : str, optional
         Name used in messages; defaults to the file name.
 
     Raises
     ------
     ThickbakeError
-        Missing or unreadable file, no faces, non-finite vertices, no UVs or UVs of zero area.
+        Missing or unreadable file, no faces, non-finite vertices, no UVs or UVs of zero area,
+        coordinates float32 cannot resolve.
     """
-    import trimesh
-
     path = None
     digest = None
     if isinstance(source, (str, os.PathLike)):
@@ -151,47 +198,73 @@ def load_asset(source, name: str | None = None) -> Asset:
                 fix=f"export the mesh as one of {', '.join(MESH_SUFFIXES)}",
             )
         digest = file_sha256(path)
-        try:
-            # (maintain_order=True would keep vertex order but drops an OBJ's UVs when the file
-            # has an unused vertex, with trimesh 5.2; the bake does not need the file's order)
-            loaded = trimesh.load(path, process=False)
-        except Exception as exc:  # trimesh raises many types for broken files
-            detail = " ".join(str(exc).split())[:160] or type(exc).__name__
-            raise ThickbakeError(f"cannot read the file ({detail})", path=path,
-                                 fix="re-export it from your modelling tool") from None
+        if suffix in (".gltf", ".glb"):
+            read = read_gltf(path)
+        elif suffix == ".obj":
+            read = read_obj(path)
+        else:
+            read = _read_with_trimesh(path)
         name = name or Path(path).name
     else:
-        loaded = source
+        read = _flatten(source, name or "mesh")
         name = name or "mesh"
-    parts = _flatten(loaded, path or name)
-    return _assemble(parts, name=name, path=path, sha256=digest)
+    parts = [p for p in read.parts if len(p.triangles)]
+    if not parts:
+        raise ThickbakeError("the mesh is empty (no triangles)", path=path or name,
+                             fix="export the asset with its geometry")
+    return _assemble(parts, read.materials, name=name, path=path, sha256=digest)
 
 
 # ---------------------------------------------------------------------------- flattening
-def _flatten(loaded, where: str):
-    """List of (vertices, faces, uv or None, normals or None) in world space."""
+def _read_with_trimesh(path: str) -> ReadResult:
     import trimesh
 
-    parts = []
+    try:
+        # (maintain_order=True would keep vertex order but drops an OBJ's UVs when the file
+        # has an unused vertex, with trimesh 5.2; the bake does not need the file's order)
+        loaded = trimesh.load(path, process=False)
+    except Exception as exc:  # trimesh raises many types for broken files
+        detail = " ".join(str(exc).split())[:160] or type(exc).__name__
+        raise ThickbakeError(f"cannot read the file ({detail})", path=path,
+                             fix="re-export it from your modelling tool") from None
+    return _flatten(loaded, path)
+
+
+def _flatten(loaded, where: str) -> ReadResult:
+    """Parts of an in-memory trimesh object (one per scene geometry instance), world space."""
+    import trimesh
+
+    materials: list[Material] = []
+    by_name: dict = {}
+    parts: list[Part] = []
+
+    def material_of(geom) -> int:
+        mat = getattr(geom.visual, "material", None)
+        label = getattr(mat, "name", None) or None
+        key = label if label is not None else id(mat) if mat is not None else None
+        if key not in by_name:
+            by_name[key] = len(materials)
+            materials.append(Material(label, len(materials) if mat is not None else None))
+        return by_name[key]
+
     if isinstance(loaded, trimesh.Trimesh):
-        parts.append(_part(loaded, np.eye(4), where))
+        parts.append(_part(loaded, np.eye(4), where, "mesh", material_of(loaded)))
     elif isinstance(loaded, trimesh.Scene):
         for node in loaded.graph.nodes_geometry:
             transform, geom_name = loaded.graph[node]
             geom = loaded.geometry.get(geom_name)
             if isinstance(geom, trimesh.Trimesh):
-                parts.append(_part(geom, np.asarray(transform, dtype=np.float64), where))
+                part = _part(geom, np.asarray(transform, dtype=np.float64), where, str(node), material_of(geom))
+                part.aliases = (str(node), str(geom_name))
+                part.mesh = str(geom_name)
+                parts.append(part)
     else:
         raise ThickbakeError("the file holds no triangle mesh", path=where,
                              fix="export the asset as a triangle mesh (not points or lines)")
-    parts = [p for p in parts if len(p[1])]
-    if not parts:
-        raise ThickbakeError("the mesh is empty (no triangles)", path=where,
-                             fix="export the asset with its geometry")
-    return parts
+    return ReadResult(parts=parts, materials=materials or [Material(None, None)])
 
 
-def _part(geom, transform: np.ndarray, where: str):
+def _part(geom, transform: np.ndarray, where: str, name: str, material: int) -> Part:
     vertices = np.asarray(geom.vertices, dtype=np.float64)
     faces = np.asarray(geom.faces, dtype=np.int64)
     if faces.ndim != 2 or faces.shape[1] != 3:
@@ -200,99 +273,128 @@ def _part(geom, transform: np.ndarray, where: str):
         raise ThickbakeError(f"a triangle refers to vertex {int(faces.max())} of {len(vertices)} (corrupt index data)",
                              path=where, fix="re-export the mesh from your modelling tool")
     uv = getattr(geom.visual, "uv", None)
+    corner_uv = np.full((len(faces), 3, 2), np.nan)
     if uv is not None:
         uv = np.asarray(uv, dtype=np.float64)
-        if uv.shape != (len(vertices), 2):
-            uv = None
+        if uv.shape == (len(vertices), 2):
+            corner_uv = uv[faces]
     normals = None
     if "vertex_normals" in geom._cache:
         normals = np.asarray(geom.vertex_normals, dtype=np.float64)
-        if normals.shape != vertices.shape:
-            normals = None
-    linear = transform[:3, :3]
-    world = vertices @ linear.T + transform[:3, 3]
-    if normals is not None:
-        normals = normals @ np.linalg.inv(linear)  # inverse transpose, applied to row vectors
-    if np.linalg.det(linear) < 0:
-        faces = faces[:, ::-1]
-    return world, faces, uv, normals
+        normals = normals[faces] if normals.shape == vertices.shape else None
+    tri, normals, order = apply_transform(vertices[faces], normals, transform)
+    return Part(name=name, aliases=(name,), triangles=tri[:, order], uv_sets=[corner_uv[:, order]],
+                normals=None if normals is None else normals[:, order], material=material,
+                scale=transform_scale(transform[:3, :3]), mesh=name, vertices=len(vertices))
 
 
 # ---------------------------------------------------------------------------- assembly
-def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
+def _assemble(parts: list[Part], materials: list[Material], name: str, path: str | None, sha256: str | None) -> Asset:
     where = path or name
-    tri_list, uv_list, nrm_list, has_uv_list, has_nrm_list = [], [], [], [], []
-    vertices_in_file = 0
-    for world, faces, uv, normals in parts:
-        vertices_in_file += len(world)
-        tri_list.append(world[faces])
-        uv_list.append(uv[faces] if uv is not None else np.full((len(faces), 3, 2), np.nan))
-        has_uv_list.append(np.full(len(faces), uv is not None))
-        nrm_list.append(normals[faces] if normals is not None else np.zeros((len(faces), 3, 3)))
-        has_nrm_list.append(np.full(len(faces), normals is not None))
-    triangles = np.concatenate(tri_list)
-    triangle_uv = np.concatenate(uv_list)
-    triangle_normals = np.concatenate(nrm_list)
-    has_uv = np.concatenate(has_uv_list)
-    has_file_normals = np.concatenate(has_nrm_list)
+    n_sets = max(len(p.uv_sets) for p in parts)
+    triangles = np.concatenate([p.triangles for p in parts])
+    uv_sets = [np.concatenate([p.uv_sets[s] if s < len(p.uv_sets) else np.full((len(p.triangles), 3, 2), np.nan)
+                               for p in parts]) for s in range(n_sets)]
+    triangle_normals = np.concatenate([p.normals if p.normals is not None else np.zeros((len(p.triangles), 3, 3))
+                                       for p in parts])
+    has_file_normals = np.concatenate([np.full(len(p.triangles), p.normals is not None) for p in parts])
+    face_part = np.concatenate([np.full(len(p.triangles), i, np.int64) for i, p in enumerate(parts)])
+    face_material = np.concatenate([np.full(len(p.triangles), p.material, np.int64) for p in parts])
+    face_scale = np.concatenate([np.full(len(p.triangles), p.scale, np.float64) for p in parts])
+    meshes = sorted({p.mesh for p in parts})
+    face_mesh = np.concatenate([np.full(len(p.triangles), meshes.index(p.mesh), np.int64) for p in parts])
+    vertices_in_file = int(sum(p.vertices or 3 * len(p.triangles) for p in parts))
 
     if not np.isfinite(triangles).all():
         raise ThickbakeError("the mesh has vertices that are NaN or infinite", path=where,
                              fix="clean the mesh (delete loose or broken vertices) and export again")
-    if not has_uv.any():
-        raise ThickbakeError("the mesh has no UV coordinates", path=where,
-                             fix="unwrap it (give it a UV layout) and export with texture coordinates")
-    uv_ok = has_uv & np.isfinite(triangle_uv).all(axis=(1, 2))
-    if not uv_ok[has_uv].all():
+    # A UV set counts for a face when all three corners carry finite UVs; a face with some corners
+    # NaN and others finite is broken data.
+    finite = [np.isfinite(uv).all(axis=(1, 2)) for uv in uv_sets]
+    partial = [~f & np.isfinite(uv).any(axis=(1, 2)) for f, uv in zip(finite, uv_sets)]
+    if any(p.any() for p in partial):
         raise ThickbakeError("the mesh has UV coordinates that are NaN or infinite", path=where,
                              fix="repair the UV layout and export again")
-    uv_area = _uv_area(triangle_uv[has_uv])
-    if not (uv_area.sum() > 0):
-        raise ThickbakeError("the UV layout has zero area (all UVs collapse to a point or a line)", path=where,
-                             fix="unwrap the mesh so its UV islands cover part of the 0–1 square")
-    outside = _uv_outside_fraction(triangle_uv[has_uv], uv_area)
+    if not any(f.any() for f in finite):
+        raise ThickbakeError("the mesh has no UV coordinates", path=where,
+                             fix="unwrap it (give it a UV layout) and export with texture coordinates")
+    has_uv = finite[0]
+    triangle_uv = np.where(has_uv[:, None, None], uv_sets[0], 0.0)
+    if has_uv.any():
+        uv_area = _uv_area(triangle_uv[has_uv])
+        if not (uv_area.sum() > 0):
+            raise ThickbakeError("the UV layout has zero area (all UVs collapse to a point or a line)", path=where,
+                                 fix="unwrap the mesh so its UV islands cover part of the 0–1 square")
+        outside = _uv_outside_fraction(triangle_uv[has_uv], uv_area)
+    else:
+        outside = 0.0
 
-    # position-merged mesh for tracing
+    # re-centre on the bounding-box centre in float64, before anything is cast to float32
     flat = triangles.reshape(-1, 3)
     lo, hi = flat.min(axis=0), flat.max(axis=0)
+    centre = (lo + hi) / 2
     diagonal = float(np.linalg.norm(hi - lo))
-    if diagonal <= 0:
-        raise ThickbakeError("the mesh has no extent (all vertices at one point)", path=where,
-                             fix="export the real geometry")
+    _check_representable(lo, hi, diagonal, where)
+    triangles = triangles - centre
+    flat = triangles.reshape(-1, 3)
+    lo, hi = lo - centre, hi - centre
     tol = diagonal * MERGE_TOLERANCE_FRACTION
     keys = np.round((flat - lo) / tol).astype(np.int64)
     _, first, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
     trace_vertices = flat[first]
     trace_faces = inverse.reshape(-1, 3).astype(np.int64)
 
-    volume = signed_volume(trace_vertices, trace_faces)
+    cross = np.cross(triangles[:, 1] - triangles[:, 0], triangles[:, 2] - triangles[:, 0])
+    double_area = np.linalg.norm(cross, axis=1)
+    # zero-area triangles (all corners on a line, or two welded together) have no inside or outside:
+    # they are left out of every topology count, so they cannot pass for holes or flipped faces
+    welded = trace_faces
+    degenerate = ((welded[:, 0] == welded[:, 1]) | (welded[:, 1] == welded[:, 2]) | (welded[:, 0] == welded[:, 2])
+                  | ~(double_area > (DEGENERATE_AREA_FRACTION * diagonal) ** 2))
+    solid_faces = trace_faces[~degenerate]
+
+    volume = signed_volume(trace_vertices, solid_faces)
     flipped = False
     warnings: list[str] = []
     if volume < 0:
         flipped = True
         trace_faces = trace_faces[:, ::-1].copy()
+        solid_faces = solid_faces[:, ::-1].copy()
         triangles = triangles[:, ::-1].copy()
+        uv_sets = [uv[:, ::-1].copy() for uv in uv_sets]
         triangle_uv = triangle_uv[:, ::-1].copy()
         triangle_normals = triangle_normals[:, ::-1].copy()
+        cross = -cross
         volume = -volume
         warnings.append("the mesh was inside-out (negative volume); its winding was reversed for the bake")
 
-    edges = np.sort(trace_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
+    edges = np.sort(solid_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
     unique_edges, edge_counts = np.unique(edges, axis=0, return_counts=True)
     boundary = unique_edges[edge_counts == 1]
     non_manifold = int((edge_counts > 2).sum())
     boundary_length = float(np.linalg.norm(trace_vertices[boundary[:, 0]] - trace_vertices[boundary[:, 1]], axis=1).sum())
     watertight = bool(len(boundary) == 0 and non_manifold == 0)
-    winding_consistent = _winding_consistent(trace_faces)
-    if not watertight:
+    winding_consistent = _winding_consistent(solid_faces)
+    if len(boundary):
         warnings.append(f"the mesh is not closed ({len(boundary)} open edges after merging seams); "
                         "rays escaping through holes count as the full reach — run 'thickbake verify' on it")
+    if non_manifold:
+        warnings.append(f"{non_manifold} edges are shared by more than two faces (internal or duplicated faces) — "
+                        "run 'thickbake verify' on the mesh")
     if not winding_consistent:
         warnings.append("some faces are wound opposite to their neighbours; their normals point inward — "
                         "run 'thickbake verify' on the mesh")
+    n_degenerate = int(degenerate.sum())
+    if n_degenerate:
+        warnings.append(f"{n_degenerate} degenerate (zero-area) triangles: they get no texels and block no rays — "
+                        "delete them (merge vertices by distance, remove degenerate faces) and export again")
+    no_uv = ~np.logical_or.reduce(finite)
+    if no_uv.any():
+        names = sorted({parts[i].name for i in np.unique(face_part[no_uv])})
+        shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
+        warnings.append(f"{int(no_uv.sum())} faces have no UV coordinates (in {shown}): they block rays but get no "
+                        "texels — unwrap them if they need a map")
 
-    cross = np.cross(triangles[:, 1] - triangles[:, 0], triangles[:, 2] - triangles[:, 0])
-    double_area = np.linalg.norm(cross, axis=1)
     face_normals = np.divide(cross, double_area[:, None], out=np.zeros_like(cross), where=double_area[:, None] > 0)
 
     need = ~has_file_normals
@@ -305,7 +407,7 @@ def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
 
     report = MeshReport(
         faces=int(len(triangles)),
-        vertices_in_file=int(vertices_in_file),
+        vertices_in_file=vertices_in_file,
         vertices_merged=int(len(trace_vertices)),
         watertight=watertight,
         winding_consistent=winding_consistent,
@@ -318,16 +420,52 @@ def _assemble(parts, name: str, path: str | None, sha256: str | None) -> Asset:
         normals_from_file=bool(has_file_normals.all()),
         faces_without_uv=int((~has_uv).sum()),
         uv_outside_unit_square=outside,
+        degenerate_faces=n_degenerate,
+        uv_sets=len(uv_sets),
+        materials=int(len(np.unique(face_material))),
+        parts=len(parts),
         warnings=warnings,
     )
-    if outside > 1e-6:
-        report.warnings.append(f"{outside:.1%} of the UV area lies outside the 0–1 square and is not baked")
     return Asset(
-        triangles=triangles, triangle_uv=np.where(has_uv[:, None, None], triangle_uv, 0.0),
+        triangles=triangles, triangle_uv=triangle_uv,
         triangle_normals=triangle_normals, face_normals=face_normals, has_uv=has_uv,
         trace_vertices=trace_vertices, trace_faces=trace_faces, report=report,
-        name=name, path=path, sha256=sha256,
+        name=name, path=path, sha256=sha256, centre=centre,
+        uv_sets=[np.where(f[:, None, None], uv, np.nan) for f, uv in zip(finite, uv_sets)],
+        face_material=face_material, materials=list(materials), face_part=face_part,
+        parts=[p.name for p in parts], part_aliases=[tuple(p.aliases) for p in parts],
+        face_scale=face_scale, face_mesh=face_mesh,
     )
+
+
+#: Triangles whose area is below (this × diagonal)² count as degenerate: float64 cross products of
+#: unit-scale corners resolve areas down to ~1e-16, so 1e-9 of the diagonal squared (1e-18) is well
+#: inside round-off of a zero area and far below any real triangle.
+DEGENERATE_AREA_FRACTION = 1e-9
+#: A mesh whose extent is below this many float64 ulps of its largest coordinate has lost its shape
+#: to rounding before thickbake sees it: 2²⁰ ulps leave ~6 significant digits of the shape.
+MIN_EXTENT_ULPS = 2.0**20
+#: float32 handles magnitudes from ~1.2e-38 to ~3.4e38; squared distances inside the ray engine must
+#: stay finite and normal, so the extent must lie well inside the square root of that range.
+FLOAT32_EXTENT_RANGE = (1e-15, 1e15)
+
+
+def _check_representable(lo: np.ndarray, hi: np.ndarray, diagonal: float, where: str) -> None:
+    """Refuse coordinates the bake cannot trace faithfully (see the constants above)."""
+    if not (diagonal > 0):
+        raise ThickbakeError("the mesh has no extent (all vertices at one point)", path=where,
+                             fix="export the real geometry")
+    if not math.isfinite(diagonal) or diagonal > FLOAT32_EXTENT_RANGE[1]:
+        raise ThickbakeError(f"the mesh is {diagonal:.3g} scene units across, beyond what float32 ray tracing "
+                             "can hold", path=where, fix="export it in larger units (e.g. kilometres instead of millimetres)")
+    if diagonal < FLOAT32_EXTENT_RANGE[0]:
+        raise ThickbakeError(f"the mesh is only {diagonal:.3g} scene units across, below float32 resolution",
+                             path=where, fix="export it in smaller units (e.g. millimetres instead of kilometres)")
+    far = float(np.abs(np.concatenate([lo, hi])).max())
+    if diagonal < MIN_EXTENT_ULPS * np.spacing(far):
+        raise ThickbakeError(f"the mesh is {diagonal:.3g} scene units across but lies {far:.3g} from the origin: its "
+                             "coordinates have lost its shape to rounding", path=where,
+                             fix="move the asset near the origin in your modelling tool and export again")
 
 
 def _uv_area(uv: np.ndarray) -> np.ndarray:

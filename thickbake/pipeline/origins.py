@@ -29,7 +29,9 @@ def inward_origins(engine: RayEngine, positions: np.ndarray, normals: np.ndarray
     engine
         Ray engine over the traced mesh (``first_hit_faces``).
     positions, normals : (n, 3) float64
-        Surface points and their outward unit shading normals, scene units.
+        Surface points and the outward unit normals to step against, scene units.  The bake passes
+        the normal of the face each sample lies on, so every origin lies behind its own face plane
+        whatever the tilt of the shading normal.
     face_normals : (f, 3) float64
         Outward unit normals of the traced triangles.
     bias : float
