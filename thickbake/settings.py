@@ -280,11 +280,12 @@ class BakeSettings:
 
         Run options are not fields, so they cannot enter it; the value equals what earlier versions
         computed with threads, chunking and order dropped, which keeps batch outputs up to date.
-        Fields added later (``medium``, ``scene_unit``) enter it only when set, for the same reason.
+        Fields added later enter it only when they differ from their defaults (``medium``,
+        ``scene_unit``: None; ``uv_set``: 0; ``blockers``: "all"), for the same reason.
         """
         data = self.to_dict()
-        for key in OPTIONAL_CONTENT_KEYS:
-            if data.get(key) is None:
+        for key, default in OPTIONAL_CONTENT_DEFAULTS.items():
+            if data.get(key) == default:
                 data.pop(key, None)
         blob = json.dumps(data, sort_keys=True, separators=(",", ":")).encode()
         return hashlib.sha256(blob).hexdigest()
@@ -379,9 +380,10 @@ def _check_keys(values: Mapping[str, Any], allowed: tuple[str, ...], where: str)
         )
 
 
-#: Content fields that enter :meth:`BakeSettings.content_hash` only when set (added after hashes were
-#: recorded in batch sidecars).
-OPTIONAL_CONTENT_KEYS = ("medium", "scene_unit")
+#: Content fields that enter :meth:`BakeSettings.content_hash` only when they differ from these
+#: defaults (added after hashes were recorded in batch sidecars).
+OPTIONAL_CONTENT_DEFAULTS = {"medium": None, "scene_unit": None, "uv_set": 0, "blockers": "all"}
+OPTIONAL_CONTENT_KEYS = tuple(OPTIONAL_CONTENT_DEFAULTS)
 
 #: ``reach = "fit"`` encodes with this percentile of the covered texels' values: the few texels in
 #: a thick core or behind a rim would otherwise set the scale for all; 0.5% of the texels clipped
