@@ -90,13 +90,14 @@ def test_check_failure_is_exit_1(assets, tmp_path):
 
 
 def planted(monkeypatch, exc):
-    """Make the library's bake raise ``exc`` (the command line imports it when the command runs)."""
+    """Make the library's bakes raise ``exc`` (the command line imports them when the command runs)."""
     import thickbake.pipeline.driver
 
     def broken(*args, **kwargs):
         raise exc
 
     monkeypatch.setattr(thickbake.pipeline.driver, "bake", broken)
+    monkeypatch.setattr(thickbake.pipeline.driver, "bake_maps", broken)
 
 
 def test_internal_error_is_exit_70_in_one_line_naming_debug(assets, tmp_path, monkeypatch, capsys):

@@ -121,7 +121,12 @@ class AssetJob:
     source : Path
         Absolute source path.
     map_rel : str
-        Map path relative to OUT, POSIX separators (the sidecar is beside it, ``.json``).
+        Map path relative to OUT, POSIX separators (the sidecar is beside it, ``.json``), when the
+        asset makes one map; an asset of several materials, UV sets or UDIM tiles makes several,
+        named by :mod:`thickbake.maps.naming` in the same folder.
+    maps : list of dict
+        After baking or skipping: every map of the asset, ``map`` and ``sidecar`` paths relative to
+        OUT, the sidecar's content (``data``) and a ``thumbnail`` (PNG bytes, fresh bakes only).
     options : AssetOptions
         Settings, format and matching rules from the rules file.
     status : str
@@ -151,6 +156,7 @@ class AssetJob:
     cost: float = 1.0
     attempts: int = 0
     solo: bool = False
+    maps: list = field(default_factory=list)
 
     @property
     def sidecar_rel(self) -> str:
@@ -329,34 +335,75 @@ def _previous_user_failures(out: Path) -> dict[str, dict]:
 
 
 def _outdated_reason(job: AssetJob, out: Path) -> str | None:
-    """None when the outputs on disk are up to date (and then ``job.sidecar`` is set), else why not."""
-    from thickbake.maps.sidecar import BatchRecord, read_sidecar
+    """None when the outputs on disk are up to date (``job.maps`` and ``job.sidecar`` are then set), else why not.
+
+    The maps of an asset are found through their sidecars (``<stem>.*.json`` in the map's folder
+    whose ``batch.source`` is this asset); each lists every map of its asset under ``batch.maps``.
+    """
+    from thickbake.maps.sidecar import BatchRecord, parse_sidecar
     from thickbake.pipeline.load import file_sha256
 
-    map_path = out / job.map_rel
-    side_path = out / job.sidecar_rel
-    if not map_path.is_file():
+    found = _asset_sidecars(job, out)
+    if not found:
         return "no map yet"
-    if not side_path.is_file():
-        return "the map has no sidecar"
-    try:
-        side = read_sidecar(map_path)
-    except ThickbakeError:
-        return "the sidecar is unreadable"
-    batch = side.batch or BatchRecord(None, None, None)
-    if side.version != __version__:
-        return f"baked by thickbake {side.data.get('thickbake_version')}, this is {__version__}"
-    if side.input_sha256 != job.input_sha256 or batch.inputs_sha256 != job.inputs_sha256:
-        return "the mesh changed"
-    if batch.requested_settings_hash != job.requested_hash:
-        return "the settings changed"
-    try:
-        if file_sha256(map_path) != batch.map_sha256:
-            return "the map does not match its sidecar"
-    except OSError:
-        return "the map is unreadable"
-    job.sidecar = side.data
+    names = found[0][1].get("batch", {}).get("maps") or [PurePosixPath(job.map_rel).name]
+    folder = PurePosixPath(job.map_rel).parent
+    expected = {PurePosixPath(n).with_suffix(".json").name for n in names}
+    if {side.name for side, _ in found} != expected:
+        return "the asset's set of maps is incomplete"
+    by_name = {side.name: data for side, data in found}
+    maps = []
+    for name in names:
+        data = by_name[PurePosixPath(name).with_suffix(".json").name]
+        try:
+            side = parse_sidecar(data, out / folder / name)
+        except ThickbakeError:
+            return "the sidecar is unreadable"
+        batch = side.batch or BatchRecord(None, None, None)
+        if side.version != __version__:
+            return f"baked by thickbake {data.get('thickbake_version')}, this is {__version__}"
+        if side.input_sha256 != job.input_sha256 or batch.inputs_sha256 != job.inputs_sha256:
+            return "the mesh changed"
+        if batch.requested_settings_hash != job.requested_hash:
+            return "the settings changed"
+        map_rel = (folder / name).as_posix()
+        if not (out / map_rel).is_file():
+            return "no map yet"
+        try:
+            if file_sha256(out / map_rel) != batch.map_sha256:
+                return "the map does not match its sidecar"
+        except OSError:
+            return "the map is unreadable"
+        maps.append({"map": map_rel, "sidecar": PurePosixPath(map_rel).with_suffix(".json").as_posix(), "data": data,
+                     "thumbnail": None})
+    job.maps = maps
+    job.sidecar = maps[0]["data"]
     return None
+
+
+def _asset_sidecars(job: AssetJob, out: Path) -> list[tuple[Path, dict]]:
+    """(path, content) of the sidecars in OUT that a batch wrote for this asset, sorted by name."""
+    folder = (out / job.map_rel).parent
+    stem = PurePosixPath(job.rel).stem
+    found = []
+    try:
+        candidates = sorted(folder.glob(f"{_glob_escape(stem)}.*.json"))
+    except OSError:
+        return []
+    for side in candidates:
+        try:
+            data = json.loads(side.read_text("utf-8"))
+        except (OSError, ValueError):
+            if side.name == PurePosixPath(job.sidecar_rel).name:
+                found.append((side, {}))
+            continue
+        if isinstance(data, dict) and isinstance(data.get("batch"), dict) and data["batch"].get("source") == job.rel:
+            found.append((side, data))
+    return found
+
+
+def _glob_escape(text: str) -> str:
+    return "".join(f"[{c}]" if c in "*?[" else c for c in text)
 
 
 class _Interrupts:
@@ -483,7 +530,7 @@ def _run_jobs(plan: BatchPlan, todo: list[AssetJob], runner, threads: int | None
             tally["failed"] += 1
             notify(f"failed: {job.rel}: {job.error}")
         else:
-            tally["rays"] += int((job.sidecar or {}).get("rays_traced", 0))
+            tally["rays"] += sum(int(m["data"].get("rays_traced", 0)) for m in job.maps)
         if progress is not None:
             note = f" {tally['done']}/{len(todo)} assets" + (f", {tally['failed']} failed" if tally["failed"] else "")
             progress(tally["cost"] / total_cost, tally["rays"], note)
@@ -550,9 +597,12 @@ def _task(plan: BatchPlan, job: AssetJob, threads: int | None) -> dict:
 
 
 def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
-    """Record a worker's result on the job and write its map and sidecar (sidecar last)."""
+    """Record a worker's result on the job and write its maps and sidecars (each sidecar after its map).
+
+    Maps of an earlier bake of the same asset that this bake no longer makes (the asset lost a
+    material or a tile) are removed, so the folder holds exactly the asset's current maps.
+    """
     from thickbake.maps.files import write_map
-    from thickbake.maps.sidecar import sidecar_path
 
     job.worker_seconds = result.get("worker_seconds")
     job.threads = result.get("threads")
@@ -564,16 +614,30 @@ def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
         job.failure_kind = result.get("failure") or "internal"
         job.traceback = result.get("traceback")
         return
-    assert sidecar_path(out / job.map_rel) == out / job.sidecar_rel
+    folder = PurePosixPath(job.map_rel).parent
+    stale = {side for side, _ in _asset_sidecars(job, out)}
+    maps = []
     try:
-        write_map(out / job.map_rel, result["map_bytes"], result["sidecar"])  # sidecar last, atomic each
+        for item in result["maps"]:
+            map_rel = (folder / item["name"]).as_posix()
+            side_rel = PurePosixPath(map_rel).with_suffix(".json").as_posix()
+            write_map(out / map_rel, item["map_bytes"], item["sidecar"])  # sidecar last, atomic each
+            stale.discard(out / side_rel)
+            maps.append({"map": map_rel, "sidecar": side_rel, "data": item["sidecar"], "thumbnail": item.get("thumbnail")})
     except ThickbakeError as exc:
         job.status = "failed"
         job.error = exc.one_line()
         return
+    for side in stale:
+        for path in (side, side.with_suffix(Path(job.map_rel).suffix)):
+            try:
+                path.unlink()
+            except OSError:
+                pass
     job.status = "baked"
-    job.sidecar = result["sidecar"]
-    job.thumbnail = result.get("thumbnail")
+    job.maps = maps
+    job.sidecar = maps[0]["data"]
+    job.thumbnail = maps[0]["thumbnail"]
 
 
 @contextmanager
@@ -659,6 +723,11 @@ def summary_line(outcome: BatchOutcome) -> str:
     parts = [f"{totals['baked']} baked", f"{totals['skipped']} skipped", f"{totals['failed']} failed"]
     if totals["not_started"]:
         parts.append(f"{totals['not_started']} not started (interrupted)")
+    extra = ""
+    if totals.get("maps", 0) > totals["baked"] + totals["skipped"]:
+        extra += f" ({totals['maps']} maps)"
+    if totals.get("warnings"):
+        extra += f", {totals['warnings']} warning{'s' if totals['warnings'] != 1 else ''} (see the report)"
     how = ""
     if outcome.jobs_used:
         how = f", {outcome.jobs_used} job{'s' if outcome.jobs_used != 1 else ''}"
@@ -667,7 +736,8 @@ def summary_line(outcome: BatchOutcome) -> str:
         else:
             how += " on the cluster"
     report = outcome.plan.out / "report.html"
-    return f"batch: {', '.join(parts)} of {totals['assets']} assets in {outcome.seconds:.1f} s{how}; report {report}"
+    return (f"batch: {', '.join(parts)} of {totals['assets']} assets{extra} in {outcome.seconds:.1f} s{how}; "
+            f"report {report}")
 
 
 __all__ = ["run_batch", "plan_batch", "bake_asset", "find_meshes", "map_name", "input_digests", "clean_temp_files",

@@ -17,7 +17,7 @@ import html
 import io
 import os
 from datetime import datetime, timezone
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 
 import numpy as np
 
@@ -85,7 +85,7 @@ def thumbnail_from_file(map_path: str | os.PathLike) -> bytes | None:
 def write_reports(out_dir: str | os.PathLike, report: dict, thumbnails: dict[str, bytes]) -> tuple[Path, Path]:
     """Write ``report.json`` and ``report.html`` into ``out_dir`` atomically; return their paths.
 
-    ``thumbnails`` maps an asset's source path (as in ``report["assets"][i]["source"]``) to PNG bytes.
+    ``thumbnails`` maps each map's path relative to OUT (``report["assets"][i]["maps"][j]["map"]``) to PNG bytes.
     """
     from thickbake.maps.files import atomic_write_bytes, json_bytes
 
@@ -125,8 +125,10 @@ def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: i
             "skipped": count["skipped"],
             "failed": count["failed"],
             "not_started": count["not started"],
-            "rays_traced": sum(int(j.sidecar.get("rays_traced", 0)) for j in baked),
-            "bake_seconds": round(sum(float(j.sidecar.get("seconds", 0.0)) for j in baked), 3),
+            "rays_traced": sum(int(m["data"].get("rays_traced", 0)) for j in baked for m in j.maps),
+            "bake_seconds": round(sum(float(m["data"].get("seconds", 0.0)) for j in baked for m in j.maps), 3),
+            "maps": sum(len(r["maps"]) for r in rows),
+            "warnings": sum(len(r["warnings"]) for r in rows),
         },
         "assets": rows,
     }
@@ -134,16 +136,23 @@ def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: i
 
 def _report_row(job) -> dict:
     side = job.sidecar if job.status in ("baked", "skipped") and job.sidecar else {}
+    maps = [_map_row(m) for m in job.maps] if job.status in ("baked", "skipped") else []
+    # warnings come from the sidecars, so a skipped asset keeps those of the bake that made its maps
+    asset_warnings = list((side.get("mesh") or {}).get("warnings", []))
+    warnings = asset_warnings + [f"{PurePosixPath(m['map']).name}: {w}" for m in maps for w in m["warnings"]]
+    if not maps:
+        warnings = list(job.warnings or [])
     row = {
         "source": job.rel,
-        "map": job.map_rel,
-        "sidecar": job.sidecar_rel,
+        "map": maps[0]["map"] if maps else job.map_rel,
+        "sidecar": maps[0]["sidecar"] if maps else job.sidecar_rel,
+        "maps": maps,
         "status": job.status,
         "reason": job.reason,
         "error": job.error,
         "failure_kind": job.failure_kind,
         "seconds": side.get("seconds"),
-        "rays_traced": side.get("rays_traced"),
+        "rays_traced": sum(m["rays_traced"] or 0 for m in maps) if maps else None,
         "rays_per_second": side.get("rays_per_second"),
         "coverage": side.get("coverage"),
         "stats": side.get("stats"),
@@ -158,23 +167,32 @@ def _report_row(job) -> dict:
         "worker_seconds": job.worker_seconds,
         "threads": job.threads,
         "worker": job.worker,
-        "warnings": job.warnings or (side.get("mesh") or {}).get("warnings", []),
+        "asset_warnings": asset_warnings,
+        "warnings": warnings,
     }
     if job.traceback:
         row["traceback"] = job.traceback
     return row
 
 
+def _map_row(item: dict) -> dict:
+    """One map of an asset in ``report.json``: where it is, what it holds, its figures and warnings."""
+    data = item["data"]
+    return {"map": item["map"], "sidecar": item["sidecar"], "map_of": data.get("map_of"),
+            "coverage": data.get("coverage"), "stats": data.get("stats"), "size": data.get("size"),
+            "measure": data.get("measure"), "seconds": data.get("seconds"), "rays_traced": data.get("rays_traced"),
+            "rays_per_second": data.get("rays_per_second"), "escape_fraction": data.get("escape_fraction"),
+            "warnings": list(data.get("warnings") or [])}
+
+
 def batch_thumbnails(plan) -> dict[str, bytes]:
-    """Thumbnail per asset with a map: from the bake, or read from the map on disk when skipped."""
+    """Thumbnail per map (by its path relative to OUT): from the bake, or read from disk when skipped."""
     thumbs = {}
     for job in plan.jobs:
-        if job.status == "baked" and job.thumbnail:
-            thumbs[job.rel] = job.thumbnail
-        elif job.status == "skipped":
-            picture = thumbnail_from_file(plan.out / job.map_rel)
+        for item in job.maps if job.status in ("baked", "skipped") else []:
+            picture = item.get("thumbnail") or thumbnail_from_file(plan.out / item["map"])
             if picture:
-                thumbs[job.rel] = picture
+                thumbs[item["map"]] = picture
     return thumbs
 
 
@@ -194,6 +212,7 @@ h1{font-size:20px;margin:0 0 4px}h2{font-size:16px;margin:24px 0 8px}
 .badge{display:inline-block;font-size:11px;padding:0 6px;border-radius:8px;color:#fff;margin-left:4px}
 .badge.baked{background:#2e7d32}.badge.skipped{background:#757575}.badge.failed{background:#c62828}.badge.not-started{background:#ef6c00}
 dl{display:grid;grid-template-columns:auto 1fr;gap:0 8px;margin:4px 0 0}dt{color:#777}dd{margin:0;font-variant-numeric:tabular-nums}
+.warnings{margin:4px 0 0;padding-left:14px;color:#8a5a00;font-size:11px}.warnings li{word-break:break-word}
 .error{color:#c62828;font-family:ui-monospace,monospace;font-size:11px;word-break:break-word}
 """
 
@@ -214,6 +233,8 @@ def render_html(report: dict, thumbnails: dict[str, bytes]) -> str:
         f"<b>{totals['assets']}</b> assets: <b>{totals['baked']}</b> baked, "
         f"<b>{totals['skipped']}</b> skipped (up to date), "
         f"<b>{totals['failed']}</b> failed"
+        + (f", <b>{totals.get('maps', 0)}</b> maps" if totals.get("maps") else "")
+        + (f", <b>{totals['warnings']}</b> warnings" if totals.get("warnings") else "")
         + (f", <b>{totals['not_started']}</b> not started (interrupted)" if totals.get("not_started") else "")
         + (f" · {report['jobs']} job{'s' if report['jobs'] != 1 else ''} × {_threads_text(report['threads_per_bake'])}"
            if report["jobs"] else " · nothing to bake")
@@ -230,9 +251,22 @@ def render_html(report: dict, thumbnails: dict[str, bytes]) -> str:
         parts.append("</ul>")
     parts.append("<h2>Maps</h2><div class=\"sheet\">")
     for row in rows:
-        parts.append(_card(row, thumbnails.get(row["source"])))
+        if row.get("maps"):
+            for item in row["maps"]:
+                parts.append(_card(_map_card_row(row, item), thumbnails.get(item["map"])))
+        else:
+            parts.append(_card(row, thumbnails.get(row["map"])))
     parts.append("</div></body></html>\n")
     return "\n".join(parts)
+
+
+def _map_card_row(row: dict, item: dict) -> dict:
+    """The card of one map: the asset's status and settings, the map's own figures and warnings."""
+    card = dict(row, **{k: item[k] for k in ("map", "coverage", "stats", "size", "measure", "seconds",
+                                             "rays_per_second")})
+    card["map_of"] = item.get("map_of")
+    card["warnings"] = list(row.get("asset_warnings") or []) + list(item.get("warnings") or [])
+    return card
 
 
 def _card(row: dict, thumbnail: bytes | None) -> str:
@@ -259,11 +293,21 @@ def _card(row: dict, thumbnail: bytes | None) -> str:
         figures.append(("rays/s", f"{row['rays_per_second'] / 1e6:.2f} M"))
     if row.get("settings_hash"):
         figures.append(("settings", row["settings_hash"][:8]))
+    of = row.get("map_of") or {}
+    if of.get("material") is not None or of.get("tile") is not None or of.get("uv_set"):
+        figures.insert(0, ("map of", " · ".join(x for x in (
+            f"material {of['material']}" if of.get("material") is not None else "",
+            f"UV set {of['uv_set']}" if of.get("uv_set") else "",
+            f"tile {of['tile']}" if of.get("tile") is not None else "") if x)))
     dl = "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in figures)
+    warns = "".join(f'<li>{esc(w)}</li>' for w in row.get("warnings") or [])
+    if warns:
+        warns = f'<ul class="warnings">{warns}</ul>'
+
     error = f'<div class="error">{esc(row["error"])}</div>' if row.get("error") else ""
     note = f'<div class="error">{esc(row["reason"])}</div>' if status == "not started" and row.get("reason") else ""
     return (f'<figure class="card {css}">{picture}<figcaption><span class="name">{esc(row["source"])}</span>'
-            f'<span class="badge {css}">{esc(status)}</span>{error}{note}<dl>{dl}</dl></figcaption></figure>')
+            f'<span class="badge {css}">{esc(status)}</span>{error}{note}<dl>{dl}</dl>{warns}</figcaption></figure>')
 
 
 def _threads_text(threads) -> str:

@@ -46,7 +46,8 @@ def bake_asset(task: dict) -> dict:
     Parameters
     ----------
     task : dict
-        ``source`` (absolute mesh path), ``map_name`` (file name of the map, for the sidecar),
+        ``source`` (absolute mesh path), ``map_name`` (file name of the map when the asset makes
+        one; several maps get the names of :mod:`thickbake.maps.naming` in the same folder),
         ``format`` (``"png"`` or ``"tif"``), ``settings`` (BakeSettings and RunOptions fields as given),
         ``threads`` (int or None: all cores of this machine over the tasks it runs at once) and
         ``batch`` (dict recorded in the sidecar under ``"batch"``).
@@ -57,8 +58,9 @@ def bake_asset(task: dict) -> dict:
         ``status`` (``"baked"`` or ``"failed"``), ``error`` (one line or None), ``failure``
         (``"user"`` for the user's mistakes, which fail again on the same input; ``"user-remote"``
         for those on a dask worker; else ``"internal"`` or ``"resources"``), ``traceback``
-        (internal errors only), ``map_bytes`` (the encoded map), ``sidecar`` (dict), ``thumbnail``
-        (PNG bytes), ``threads``, ``worker`` (host name), ``worker_seconds`` and ``warnings``.
+        (internal errors only), ``maps`` (one dict per map of the asset — material, UV set, UDIM
+        tile: ``name``, ``map_bytes``, ``sidecar``, ``thumbnail``, ``warnings``), ``threads``,
+        ``worker`` (host name), ``worker_seconds`` and ``warnings`` (the asset's and every map's).
         Nothing is written to disk.
     """
     start = time.perf_counter()
@@ -83,7 +85,8 @@ def bake_asset(task: dict) -> dict:
 
 
 def _bake_asset(task: dict) -> dict:
-    from thickbake.pipeline.driver import bake
+    from thickbake.maps.naming import default_name, name_fields, stem_of
+    from thickbake.pipeline.driver import bake_maps
     from thickbake.pipeline.load import load_asset
     from thickbake.batch.report import thumbnail_png
     from thickbake.maps.sidecar import with_batch_record
@@ -92,14 +95,22 @@ def _bake_asset(task: dict) -> dict:
     if run.threads is None:
         run = run.replace(threads=task.get("threads") or _threads_here())
     asset = load_asset(task["source"])
-    result = bake(asset, settings, run)
+    results = bake_maps(asset, settings, run)
     suffix = FORMATS[task["format"]]
     assert Path(task["map_name"]).suffix.lower() == suffix
-    image = result.image(suffix)
-    data, sidecar = result.encode(task["map_name"], image)
-    sidecar = with_batch_record(sidecar, task["batch"], data)
-    return {"map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
-            "threads": run.threads, "warnings": list(asset.report.warnings) + list(result.info["warnings"])}
+    keys = [dict(r.key.to_dict(), material_index=r.key.material_index) for r in results]
+    stem = stem_of(task["source"]) if len(results) > 1 else None
+    names = ([default_name(f, suffix) for f in name_fields(stem, settings.measure, keys)] if stem
+             else [task["map_name"]])
+    maps = []
+    for result, name in zip(results, names):
+        image = result.image(suffix)
+        data, sidecar = result.encode(name, image)
+        sidecar = with_batch_record(sidecar, dict(task["batch"], maps=names), data)
+        maps.append({"name": name, "map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
+                     "warnings": list(result.info["warnings"])})
+    return {"maps": maps, "threads": run.threads,
+            "warnings": list(asset.report.warnings) + [w for m in maps for w in m["warnings"]]}
 
 
 def _threads_here() -> int:

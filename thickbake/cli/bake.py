@@ -1,4 +1,4 @@
-"""``thickbake bake``: one mesh into a map and its sidecar."""
+"""``thickbake bake``: one mesh into its maps (one per material, UV set and UDIM tile) and their sidecars."""
 
 from __future__ import annotations
 
@@ -6,33 +6,42 @@ import os
 from pathlib import Path
 
 from thickbake.cli.options import add_bake_options, settings_from_args
-from thickbake.cli.output import EXIT_OK, echo, print_warnings, verbose_lines
+from thickbake.cli.output import EXIT_FAILED, EXIT_OK, echo, print_warnings, strict_failure, verbose_lines
 
 EXAMPLES = """examples:
   thickbake bake samples/candle.glb                       writes samples/candle.thickness.png + .json
   thickbake bake leaf.obj -o maps/leaf.exr --size 2048 --rays 128
   thickbake bake candle.glb --reach fit --medium marble -o candle.rgb.png --write-gltf candle.volume.glb
-  thickbake bake leaf.obj --pack-into leaf_masks.png --channel r=thickness --channel b=occlusion"""
+  thickbake bake car.glb -o maps/ --blockers own --strict    one map per material: maps/car.body.thickness.png ..."""
 
 
 def default_output(mesh: str, measure: str) -> str:
-    """``STEM.MEASURE.png`` beside the input: the one default naming pattern."""
-    path = Path(mesh)
-    stem = path.name[: -len(path.suffix)] if path.suffix else path.name
-    return str(path.with_name(f"{stem}.{measure}.png"))
+    """``STEM.MEASURE.png`` beside the input: the default name of a single-map asset (see
+    :mod:`thickbake.maps.naming` for several maps)."""
+    from thickbake.maps.naming import default_name, name_fields, stem_of
+
+    fields = name_fields(stem_of(mesh), measure, [{"material": None, "uv_set": 0, "tile": None}])[0]
+    return str(Path(mesh).with_name(default_name(fields)))
 
 
 def add_parser(sub, common) -> None:
-    p = sub.add_parser("bake", parents=[common], help="bake one mesh into a map and its JSON sidecar",
-                       description="Bake one UV-mapped mesh into a thickness map (PNG 16/8-bit or float TIFF) "
-                                   "plus a JSON sidecar (same name, .json) that says how to decode it.",
+    p = sub.add_parser("bake", parents=[common], help="bake one mesh into maps and their JSON sidecars",
+                       description="Bake one UV-mapped mesh into thickness maps (PNG 16/8-bit, float TIFF or EXR), "
+                                   "one per material, UV set and UDIM tile, each with a JSON sidecar (same name, "
+                                   ".json) that says how to decode it and which part of the asset it holds.",
                        epilog=EXAMPLES)
     p.add_argument("mesh", metavar="MESH", nargs="?",
                    help="the asset to bake: OBJ, glTF/GLB or PLY file with UV coordinates")
     p.add_argument("-o", "--output", metavar="OUT",
                    help="OUT.png (encoded, see the sidecar), OUT.tif (float32 measure) or OUT.exr (half/float); "
-                        "default MESH-STEM.MEASURE.png beside the input (none with --pack-into alone)")
-    p.add_argument("--error-out", metavar="FILE.tif", help="also write the per-texel standard error as a float TIFF")
+                        "for several maps each map's material/UV set/tile is inserted before the suffix.  A folder "
+                        "(existing, or ending in /) takes the default names; a pattern may use {stem} {material} "
+                        "{uvset} {tile} {measure}.  Default STEM[.MATERIAL][.uvN][.TILE].MEASURE.png beside the "
+                        "input (none with --pack-into alone)")
+    p.add_argument("--error-out", metavar="FILE.tif",
+                   help="also write the per-texel standard error as a float TIFF (named like -o for several maps)")
+    p.add_argument("--strict", action="store_true",
+                   help="treat every warning as a failure: exit 1 when any was printed (the maps are still written)")
     d = p.add_argument_group("delivery")
     d.add_argument("--write-gltf", metavar="OUT.glb|OUT.gltf",
                    help="also write a copy of the glTF asset whose baked materials carry KHR_materials_volume "
@@ -53,7 +62,9 @@ def add_parser(sub, common) -> None:
 def run(args) -> int:
     from thickbake.errors import ThickbakeError
     from thickbake.maps.files import check_output_path
-    from thickbake.pipeline.driver import bake
+    from thickbake.maps.naming import output_paths
+    from thickbake.pipeline.driver import bake_maps
+    from thickbake.pipeline.groups import map_groups
     from thickbake.pipeline.load import load_asset
     from thickbake.cli.progress import ProgressBar
 
@@ -67,61 +78,91 @@ def run(args) -> int:
         raise ThickbakeError("no mesh given", fix="thickbake bake MESH [options]; see 'thickbake bake --help'")
     settings, run_options = settings_from_args(args)
     channels = _channel_plan(args, settings)
-    output = args.output or (None if args.pack_into else default_output(args.mesh, settings.measure))
-    if output is not None:
-        check_output_path(output, args.error_out)
-        if settings.medium and Path(output).suffix.lower() in (".tif", ".tiff"):
-            raise ThickbakeError("an RGB transmittance map cannot be a float TIFF", path=output,
-                                 fix="name it .png or .exr")
-    elif args.error_out:
-        raise ThickbakeError("--error-out goes with a map output", fix="give -o OUT as well")
-    volume_plan = None
     if args.gltf_transmission is not None and not args.write_gltf:
         raise ThickbakeError("--gltf-transmission goes with --write-gltf", fix="give --write-gltf OUT.glb as well")
+    if args.error_out and args.output is None and args.pack_into:
+        raise ThickbakeError("--error-out goes with a map output", fix="give -o OUT as well")
+    asset = load_asset(args.mesh)
+    groups, _ = map_groups(asset, settings.uv_set)
+    keys = [dict(g.key.to_dict(), material_index=g.key.material_index) for g in groups]
+    outputs = None if (args.output is None and args.pack_into) else \
+        output_paths(args.output, args.mesh, settings.measure, keys)
+    errors = output_paths(args.error_out, args.mesh, settings.measure, keys) if args.error_out else [None] * len(keys)
+    for out, err in zip(outputs or [], errors):
+        check_output_path(out, err)
+        if settings.medium and out.suffix.lower() in (".tif", ".tiff"):
+            raise ThickbakeError("an RGB transmittance map cannot be a float TIFF", path=out,
+                                 fix="name it .png or .exr")
+    if args.pack_into and len(groups) > 1:
+        raise ThickbakeError(f"--pack-into packs one map, and the asset makes {len(groups)} (one per material, UV set "
+                             "and tile)", path=args.mesh, fix="bake the maps into files with -o, then pack them")
+    volume_plan = None
     if args.write_gltf:
         from thickbake.pipeline.deliver import check_volume_request
 
-        volume_plan = check_volume_request(args.mesh, args.write_gltf, settings, transmission=args.gltf_transmission)
+        if any(g.key.tile is not None for g in groups):
+            raise ThickbakeError("the UV layout spans UDIM tiles, which glTF textures cannot address", path=args.mesh,
+                                 fix="keep the UVs in the 0-1 square for --write-gltf, or bake without it")
+        volume_plan = check_volume_request(args.mesh, args.write_gltf, settings, uv_set=settings.uv_set,
+                                           transmission=args.gltf_transmission)
     if args.pack_into:
         from thickbake.maps.packing import load_target
 
         load_target(args.pack_into, settings.bits)  # an unreadable target is refused before baking
-    asset = load_asset(args.mesh)
+    warned = list(asset.report.warnings)
     print_warnings(asset.report.warnings, args.mesh)
-    results = {}
+    baked = {}
     for measure in dict.fromkeys([settings.measure] + [m for _, m in channels]):
         bar = ProgressBar(f"baking {os.path.basename(args.mesh)}" + (f" ({measure})" if len(channels) > 1 else ""),
                           enabled=False if args.quiet else None)
         try:
-            results[measure] = bake(asset, settings if measure == settings.measure else settings.replace(measure=measure),
-                                    run_options, progress=bar)
+            baked[measure] = bake_maps(asset, settings if measure == settings.measure else settings.replace(measure=measure),
+                                       run_options, progress=bar)
         finally:
             bar.close()
-    result = results[settings.measure]
-    written = []
+    results = baked[settings.measure]
+    written = [[] for _ in results]
     if volume_plan is not None:
         from thickbake.pipeline.deliver import write_gltf_copy
 
-        report = write_gltf_copy(args.mesh, args.write_gltf, volume_plan, [(result, None, 0)], args.gltf_transmission)
+        maps = ([(results[0], None, settings.uv_set)] if len(results) == 1 else
+                [(r, [r.key.material_index], settings.uv_set) for r in results if r.key.material_index is not None])
+        report = write_gltf_copy(args.mesh, args.write_gltf, volume_plan, maps, args.gltf_transmission)
         print_warnings(report.pop("warnings"), args.write_gltf)
-        result.info["gltf"] = report
-        written.append(args.write_gltf)
+        for r in results:
+            r.info["gltf"] = report
+        written[0].append(args.write_gltf)
     if args.pack_into:
-        result.info["packed_into"] = _pack(args.pack_into, channels, results, settings.bits)
-        written.append(args.pack_into)
-    if output is not None:
-        result.write(output, error_out=args.error_out, exr_type=args.exr_type)
-        written.insert(0, output)
-    for other in results.values():
-        print_warnings(other.info["warnings"], args.mesh)
-    if not args.quiet:
-        echo(summary_line(result, args.mesh, ", ".join(map(str, written))))
+        results[0].info["packed_into"] = _pack(args.pack_into, channels, {m: rs[0] for m, rs in baked.items()},
+                                               settings.bits)
+        written[0].append(args.pack_into)
+    for i, result in enumerate(results):
+        if outputs is not None:
+            result.write(outputs[i], error_out=errors[i], exr_type=args.exr_type)
+            written[i].insert(0, outputs[i])
+    for i, result in enumerate(results):
+        where = args.mesh if len(results) == 1 else f"{args.mesh} ({_key_label(result)})"
+        for other in baked.values():
+            print_warnings(other[i].info["warnings"], where)
+            warned += other[i].info["warnings"]
+        if not args.quiet:
+            echo(summary_line(result, args.mesh, ", ".join(map(str, written[i]))))
     if args.verbose:
-        info = result.info
-        verbose_lines([f"settings: {_settings_text(info['settings'])}", f"run: {_settings_text(info['run'])}",
-                       f"timing: setup {info['timing']['setup_seconds']:.3f} s, trace {info['timing']['trace_seconds']:.3f} s, "
-                       f"total {info['seconds']:.3f} s on engine {info['engine']}"])
+        info = results[0].info
+        verbose_lines([f"settings: {_settings_text(info['settings'])}", f"run: {_settings_text(info['run'])}"]
+                      + [f"timing: {_key_label(r) + ': ' if len(results) > 1 else ''}setup "
+                         f"{r.info['timing']['setup_seconds']:.3f} s, trace {r.info['timing']['trace_seconds']:.3f} s, "
+                         f"total {r.info['seconds']:.3f} s on engine {r.info['engine']}" for r in results])
+    if args.strict and warned:
+        strict_failure(len(warned))
+        return EXIT_FAILED
     return EXIT_OK
+
+
+def _key_label(result) -> str:
+    key = result.key
+    return " ".join(x for x in (f"material {key.material_label}", f"UV set {key.uv_set}" if key.uv_set else "",
+                                f"tile {key.tile}" if key.tile is not None else "") if x)
 
 
 def _channel_plan(args, settings) -> list[tuple[str, str]]:
@@ -194,8 +235,8 @@ def summary_line(result, source: str, out: str) -> str:
     extra = ""
     if info["overlap"] > 0:
         extra += f", {info['overlap']:.1%} of texels on overlapping UVs"
-    if info["miss_fraction"] > 0:
-        extra += f", {info['miss_fraction']:.2%} of rays escaped"
+    if info.get("escape_fraction", 0) > 0:
+        extra += f", {info['escape_fraction']:.2%} of rays escaped"
     return (f"{source} -> {out}: {w}x{h}, {int(result.covered.sum()):,} texels ({info['coverage']:.1%} covered{extra}), "
             f"{info['rays_traced']:,} rays at {info['rays_per_second'] / 1e6:.2f}M rays/s in {info['seconds']:.1f} s; "
             f"{info['measure']} min {st['min']:.4g} mean {st['mean']:.4g} max {st['max']:.4g}{units}")

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 
-from thickbake.cli.output import EXIT_OK, echo, one_line, print_warnings, verbose_lines
+from thickbake.cli.output import EXIT_FAILED, EXIT_OK, echo, one_line, print_warnings, strict_failure, verbose_lines
 from thickbake.errors import ThickbakeError
 
 EXAMPLES = """examples:
@@ -25,6 +25,8 @@ def add_parser(sub, common) -> None:
     p.add_argument("--force", action="store_true", help="bake even assets whose outputs are up to date")
     p.add_argument("--dry-run", action="store_true", help="print what would be baked or skipped and why; write nothing")
     p.add_argument("--cluster", metavar="ADDRESS", help="dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
+    p.add_argument("--strict", action="store_true",
+                   help="treat every warning in the report (skipped assets' included) as a failure: exit 1")
     p.set_defaults(func=run)
 
 
@@ -58,4 +60,8 @@ def run(args) -> int:
         verbose_lines(format_plan(outcome.plan)[:-1])
     if not args.quiet:
         echo(summary_line(outcome))
+    warnings = outcome.report["totals"].get("warnings", 0) if outcome.report else 0
+    if args.strict and warnings and outcome.exit_code == EXIT_OK:
+        strict_failure(warnings)
+        return EXIT_FAILED
     return outcome.exit_code

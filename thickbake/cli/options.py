@@ -45,7 +45,7 @@ def _reach(text):
 
 BAKE_OPTION_NAMES = ("size", "rays", "cone", "lobe", "measure", "reach", "attenuation_distance", "invert",
                      "supersample", "pad", "bits", "seed", "threads", "bias", "sequence", "target_error",
-                     "chunk_rays", "order", "medium", "scene_unit")  # map content and run options (OPTION_KEYS)
+                     "chunk_rays", "order", "medium", "scene_unit", "uv_set", "blockers")  # map content and run options (OPTION_KEYS)
 
 
 def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024", rays_default: str = "64") -> None:
@@ -91,6 +91,12 @@ def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024"
     g.add_argument("--scene-unit", metavar="LENGTH",
                    help="length of one scene unit for --medium, e.g. 1cm, 1m, 25.4mm (default 1m for glTF; "
                         "required for other formats)")
+    g.add_argument("--uv-set", type=int, metavar="N",
+                   help="UV channel the maps follow (glTF TEXCOORD_N; default 0)")
+    g.add_argument("--blockers", metavar="all|own|NAME,...",
+                   help="what blocks a texel's rays: every part (all, default), only the part the texel lies on "
+                        "(own: glTF node/primitive, OBJ object/group), or the named parts or materials (plus the "
+                        "texel's own part)")
     g.add_argument("--chunk-rays", type=int, metavar="N",
                    help="tuning: rays per work item of the thread pool (default 262144; bounds memory, no effect on the map)")
     g.add_argument("--order", choices=("morton", "rows"),

@@ -4,7 +4,7 @@ One table of exit codes serves every command (README, "Exit codes and errors"):
 
 ====  ==========================================================================
 0     done; every check passed
-1     a check failed (verify, compare) or an asset failed (batch)
+1     a check failed (verify, compare), an asset failed (batch), or --strict saw a warning (bake, batch)
 2     bad input or options: one line naming the file or option and the fix; nothing written
 70    internal error (a bug): one line; rerun with --debug for the traceback
 130   interrupted (Ctrl-C)
@@ -40,6 +40,12 @@ def error(text: str) -> None:
 def print_warnings(warnings, where: str) -> None:
     for text in warnings:
         print(f"thickbake: warning: {one_line(f'{where}: {text}')}", file=sys.stderr)
+
+
+def strict_failure(count: int) -> None:
+    """The closing line of a ``--strict`` run that saw warnings (it exits 1)."""
+    print(f"thickbake: error: --strict: {count} warning{'s' if count != 1 else ''} above count as a failure",
+          file=sys.stderr)
 
 
 def verbose_lines(lines) -> None:
