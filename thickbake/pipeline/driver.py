@@ -294,7 +294,8 @@ def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None
         def map_progress(fraction, rays, i=i):
             if progress is not None:
                 progress(float(done_before[i] + weights[i] * fraction), traced_before[0] + rays)
-        result = _bake_map(asset, s, r, group, engines, engine_of_face, map_progress, setup if i == 0 else 0.0)
+        result = _bake_map(asset, s, r, group, engines, engine_of_face, map_progress, setup if i == 0 else 0.0,
+                           fit, mm_per_unit)
         traced_before[0] += result.info["rays_traced"]
         if group_warnings:
             result.info["warnings"] = list(group_warnings) + result.info["warnings"]
@@ -308,8 +309,9 @@ def _key_text(key: MapKey) -> str:
 
 
 def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engines, engine_of_face, progress,
-              setup_seconds: float) -> BakeResult:
-    """Bake the map of one group of faces (all of the asset's engines shared)."""
+              setup_seconds: float, fit: bool, mm_per_unit: float | None) -> BakeResult:
+    """Bake the map of one group of faces (all of the asset's engines shared); ``fit`` fits this
+    map's own reach (so each map of an asset uses its full code range)."""
     start = time.perf_counter() - setup_seconds
     ctx, tiles, starts, members = _prepare(asset, s, r, group, engines, engine_of_face)
     setup_seconds = time.perf_counter() - start
