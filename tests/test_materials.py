@@ -336,3 +336,59 @@ def test_faces_without_uv_and_degenerate_triangles_are_named(tmp_path):
     # the sliver lies along a closed edge: the solid stays closed and consistently wound
     assert asset.report.watertight and asset.report.winding_consistent
     assert "not closed" not in text and "wound opposite" not in text
+
+
+def test_obj_objects_and_usemtl_make_parts_and_maps(unit, small, tmp_path):
+    # OBJ: "o" names a part, "usemtl" a material (Wavefront OBJ format); two spheres in one file, each
+    # its own object and material, bake into two maps reading their own 2R along −N, and "--blockers
+    # NAME" accepts the object names
+    from thickbake.checks.surfaces import obj_bytes
+
+    lines, offset = [], {"v": 0, "vt": 0, "vn": 0}
+    for name, shape, dx in (("big", unit, -3.0), ("pea", small, 3.0)):
+        text = obj_bytes(shape.mesh).decode()
+        counts = {"v": 0, "vt": 0, "vn": 0}
+        lines += [f"o {name}", f"usemtl {name}_mat"]
+        for line in text.splitlines():
+            head, *rest = line.split()
+            if head == "v":
+                x, y, z = map(float, rest)
+                lines.append(f"v {x + dx!r} {y!r} {z!r}")
+            elif head in ("vt", "vn"):
+                lines.append(line)
+            elif head == "f":
+                lines.append("f " + " ".join("/".join(str(int(i) + offset[k]) for i, k in zip(c.split("/"), ("v", "vt", "vn")))
+                                              for c in rest))
+            if head in counts:
+                counts[head] += 1
+        for k in offset:
+            offset[k] += counts[k]
+    path = tmp_path / "pair.obj"
+    path.write_text("\n".join(lines) + "\n")
+    maps = thickbake.bake_maps(str(path), size=48, cone=0, blockers="big,pea")
+    assert [m.key.material for m in maps] == ["big_mat", "pea_mat"]
+    for result, shape in zip(maps, (unit, small)):
+        tol = 2 * shape.facet_error + result.settings.bias + FLOAT32
+        assert np.abs(result.values[result.covered] - 2 * shape.params["radius"]).max() <= tol
+    assert load_asset(str(path)).parts == ["big", "pea"]
+
+
+def test_degenerate_triangles_bake_and_verify_agree():
+    # a closed capsule-like solid with 200 zero-area slivers along its edges: neither bake nor verify may
+    # call it open or inward-wound; both name the degenerate triangles
+    from thickbake.checks.verify import verify_asset
+
+    cyl = shapes.capped_cylinder(segments=48)
+    m = cyl.mesh
+    faces = np.asarray(m.faces)
+    a, b = faces[:200, 0], faces[:200, 1]
+    slivers = np.stack([a, b, a], axis=1)  # a repeated corner: zero area, on an existing edge
+    mesh = trimesh.Trimesh(m.vertices, np.vstack([faces, slivers]), vertex_normals=m.vertex_normals, visual=m.visual,
+                           process=False)
+    asset = load_asset(mesh)
+    text = " ".join(asset.report.warnings)
+    assert "200 degenerate" in text and "not closed" not in text and "wound opposite" not in text
+    report = verify_asset(mesh, {"size": 64, "rays": 8})
+    rows = {c.quantity: c for c in report.checks}
+    assert rows["closed surface"].status == "PASS" and rows["faces wound outward"].status == "PASS"
+    assert "degenerate" in rows["UV coverage"].note

@@ -557,7 +557,10 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
                                      "non_manifold_edges": non_manifold}))
 
     # orientation
-    orient = face_orientation(asset.trace_vertices, asset.trace_faces, engine)
+    # zero-area triangles have no orientation: load leaves them out of its checks, and so does verify
+    solid = asset.trace_faces if asset.face_degenerate is None else asset.trace_faces[~asset.face_degenerate]
+    orient = face_orientation(asset.trace_vertices, solid, engine if len(solid) == len(asset.trace_faces)
+                              else make_engine(asset.trace_vertices, solid))
     wrong = len(orient.wrong_faces)
     figures = {"faces": orient.faces, "wrong_faces": wrong, "parts": orient.parts,
                "inside_out_parts": orient.inside_out_parts, "conflicts": orient.conflicts,

@@ -110,6 +110,8 @@ class Asset:
         Uniform local-to-world scale of the node each face belongs to (NaN: uneven scale).
     face_mesh : (f,) int64
         Which mesh each face instances (two nodes showing one glTF mesh share a value).
+    face_degenerate : (f,) bool
+        Zero-area triangles (left out of every topology check; they never block a ray).
     """
 
     triangles: np.ndarray
@@ -132,6 +134,7 @@ class Asset:
     part_aliases: list = field(default_factory=list)
     face_scale: np.ndarray | None = None
     face_mesh: np.ndarray | None = None
+    face_degenerate: np.ndarray | None = None
 
     @property
     def bounds(self) -> np.ndarray:
@@ -434,7 +437,7 @@ def _assemble(parts: list[Part], materials: list[Material], name: str, path: str
         uv_sets=[np.where(f[:, None, None], uv, np.nan) for f, uv in zip(finite, uv_sets)],
         face_material=face_material, materials=list(materials), face_part=face_part,
         parts=[p.name for p in parts], part_aliases=[tuple(p.aliases) for p in parts],
-        face_scale=face_scale, face_mesh=face_mesh,
+        face_scale=face_scale, face_mesh=face_mesh, face_degenerate=degenerate,
     )
 
 
