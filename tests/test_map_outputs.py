@@ -106,3 +106,15 @@ def test_batch_lists_every_map_and_keeps_warnings_when_skipping(car, tmp_path):
         assert html.count('class="card') == 3 and "left the mesh" in html
         second = run("batch", src, "-o", out, "--strict")
     assert second.returncode == 1 and "--strict" in second.stderr
+
+
+def test_verify_judges_uv_figures_per_map(car):
+    # two spheres of different radii, each with its own material and full-square UVs: each map's texel
+    # density is even (the UV sphere's layout distortion is at most 1.21 per island, surfaces.py), so
+    # the density row must not warn although the two materials differ 6x in area per texel
+    from thickbake.checks.verify import verify_asset
+
+    rows = {c.quantity: c for c in verify_asset(str(car), {"size": 48, "rays": 8}).checks}
+    assert rows["texel density spread p95/p5"].status == "info"
+    assert rows["UV overlap"].measured == 0
+    assert rows["Cauchy mean chord 4V/S"].status == "skip" and "2 maps" in rows["Cauchy mean chord 4V/S"].note

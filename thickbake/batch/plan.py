@@ -689,11 +689,14 @@ def format_plan(plan: BatchPlan) -> list[str]:
     lines = []
     for job in plan.jobs:
         action = {"bake": "bake", "skipped": "skip", "failed": "fail"}.get(job.status, job.status)
+        # an up-to-date asset of several maps (materials, tiles) lists them all; before a bake the
+        # mesh is not loaded, so only the single-map name is known
+        target = ", ".join(m["map"] for m in job.maps) if len(job.maps) > 1 else job.map_rel
         if job.status == "failed":
-            lines.append(f"{job.rel} -> {job.map_rel}: {action}" + (f" ({job.reason})" if job.reason else "")
+            lines.append(f"{job.rel} -> {target}: {action}" + (f" ({job.reason})" if job.reason else "")
                          + f": {job.error}")
         else:
-            lines.append(f"{job.rel} -> {job.map_rel}: {action} ({job.reason})")
+            lines.append(f"{job.rel} -> {target}: {action} ({job.reason})")
         content, run = settings_from_mapping(job.options.settings)
         settings = {**content.to_dict(), **run.to_dict()}
         shown = " ".join(f"{k}={_setting_text(k, v)}" for k, v in settings.items())

@@ -626,9 +626,14 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
                               "mirrored islands): they average every surface mapped there — give parts of different "
                               "thickness their own UV space" if overlapping else
                               f"{overlap:.2%} of covered texels claimed twice")))
-    per_texel = np.concatenate([m.area[m.area > 0].astype(np.float64) for m in maps])
-    p5, p95 = (np.percentile(per_texel, [5, 95]) if per_texel.size else (0.0, 0.0))
-    spread = p95 / p5 if p5 > 0 else math.inf
+    # texel density is judged within each map (maps of different materials are separate textures);
+    # the map with the widest spread speaks for the asset
+    spreads = []
+    for m in maps:
+        per_texel = m.area[m.area > 0].astype(np.float64)
+        q5, q95 = (np.percentile(per_texel, [5, 95]) if per_texel.size else (0.0, 0.0))
+        spreads.append((q95 / q5 if q5 > 0 else math.inf, q5, q95))
+    spread, p5, p95 = max(spreads, key=lambda x: x[0])
     checks.append(Check(name, "texel density spread p95/p5", WARN if spread > DENSITY_SPREAD_WARN else INFO,
                         measured=spread, tolerance=DENSITY_SPREAD_WARN,
                         note=(f"world area per texel p5 {p5:.3g}, p95 {p95:.3g} scene units²"
