@@ -1,7 +1,7 @@
 """The package's layers, read from the source with ``ast`` (no module is imported).
 
 Imports point down only: the root modules (errors, settings, version, geometry, constants, ...) sit at
-the bottom, then ``maps``, ``pipeline``, ``checks``, ``batch`` and ``cli`` on top.  A module may import
+the bottom, then ``maps``, ``pipeline``, ``checks``, ``preview``, ``batch`` and ``cli`` on top.  A module may import
 from its own layer or a lower one; inside a sub-package any direction is fine as long as nothing forms
 a cycle.  Imports inside functions count as much as those at the top of a module.  The public facade
 (``thickbake/__init__.py``) and ``__main__.py`` are the top and may import anything.  Only ``cli/``
@@ -24,7 +24,7 @@ PACKAGE = "thickbake"
 ROOT = Path(__file__).resolve().parent.parent / PACKAGE
 
 #: Layer of each sub-package; modules directly under thickbake/ are layer 0.
-LAYERS = {"maps": 1, "pipeline": 2, "checks": 3, "batch": 4, "cli": 5}
+LAYERS = {"maps": 1, "pipeline": 2, "checks": 3, "preview": 4, "batch": 5, "cli": 6}
 #: The top: may import anything, and may print or exit.
 FACADE = {PACKAGE, f"{PACKAGE}.__main__"}
 #: Modules that may print, parse arguments or exit (and the facade).

@@ -1,6 +1,6 @@
 """The ``thickbake`` command: parse, call the library, turn errors into one line and an exit code.
 
-``thickbake bake | verify | shapes | compare | batch``; one module per command beside this one.  Every
+``thickbake bake | verify | shapes | compare | batch | preview``; one module per command beside this one.  Every
 command accepts ``--debug``, ``-q`` and ``-v`` with the same meaning (before or after the command
 name).  Heavy modules are imported inside the commands, so ``--help`` answers at once.
 """
@@ -14,6 +14,7 @@ import sys
 from thickbake.cli import bake as bake_cmd
 from thickbake.cli import batch as batch_cmd
 from thickbake.cli import compare as compare_cmd
+from thickbake.cli import preview as preview_cmd
 from thickbake.cli import shapes as shapes_cmd
 from thickbake.cli import verify as verify_cmd
 from thickbake.cli.output import EXIT_INTERNAL, EXIT_INTERRUPTED, EXIT_USAGE, error
@@ -23,6 +24,8 @@ EXAMPLES = """examples:
   thickbake bake samples/candle.glb                  map + sidecar beside the input
   thickbake verify                                   the bake against closed forms
   thickbake batch samples/ -o out/                   a whole folder, with report.html
+  thickbake preview samples/candle.glb samples/candle.thickness.png -o view.html
+                                                     the asset lit from behind through its map
 
 exit codes: 0 ok, 1 a check or an asset failed, 2 bad input or options, 70 internal error, 130 interrupted"""
 
@@ -60,7 +63,7 @@ def build_parser() -> argparse.ArgumentParser:
     common = argparse.ArgumentParser(add_help=False)
     _common_flags(common, argparse.SUPPRESS)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for command in (bake_cmd, shapes_cmd, verify_cmd, compare_cmd, batch_cmd):
+    for command in (bake_cmd, shapes_cmd, verify_cmd, compare_cmd, batch_cmd, preview_cmd):
         command.add_parser(sub, common)
     return parser
 

@@ -1,0 +1,226 @@
+"""The back-lit preview in a real browser: headless Chromium renders the page, the tests read its pixels.
+
+The body: two solid spheres side by side (radii R_THIN and R_THICK, UVs in the left and right half of
+one map), baked by thickbake with the cosine lobe.  At every surface point of a sphere the
+cosine-weighted mean inward chord is 4R/3 (the chord at angle θ from the inward normal is 2R·cosθ and
+E[cosθ] = 2/3 under the cosine lobe; REFERENCES.md, "Sphere, one surface point"), so each sphere's map
+holds one value, d = 4R/3.
+
+The still is taken with the camera on +z and the light straight behind (L = −z, towards the light),
+with the term set to distortion 0, power 1, scale 1, ambient 0 and no fill light.  The page's shader
+is then (Barré-Brisebois & Bouchard, GDC 2011, as viewer.js writes it)
+
+    colour = albedo · (max(N·L, 0) + (dot(V, −L)^1 · 1 + 0) · exp(−d / A))
+
+Every visible point faces the camera, so N·L ≤ 0 and the front term vanishes; dot(V, −L) is the
+cosine between the eye ray and the axis, the same at the two spheres' mirror-image pixels (the
+spheres sit at x = ±X, so their discs are mirror images about the image centre).  So the ratio of the
+linear brightness of the two discs is exp((d_thick − d_thin) / A), whatever the albedo and the view
+factor, and their difference is at least albedo · cos(α_max) · (exp(−d_thin/A) − exp(−d_thick/A)).
+
+Tolerances, derived:
+* 8-bit sRGB output: one code is at most 1/255 · d(linear)/d(sRGB) ≤ 1/255 · 2.4 · 1.055⁻¹ ·
+  linear^(1 − 1/2.4) in linear terms (IEC 61966-2-1 derivative), ≤ 0.6 % relative for linear values
+  above 0.05; the median of hundreds of pixels only removes noise, not this bias, so it is counted once.
+* The bake's Monte-Carlo error: the per-ray chord has relative standard deviation √(2 − 16/9)/(4/3)
+  = 0.354 under the cosine lobe (REFERENCES: E[ℓ²] = 2R²); a texel averages RAYS rays, and a disc's
+  median pools hundreds of texels, so the median's error is below 3 · 1.25 · 0.354 / √(RAYS · 100)
+  relative in d (1.25: the median's efficiency against the mean for a normal law; 3σ).  In the
+  ratio, an error δd in d moves exp(−d/A) by δd/A.
+* Facets: the sphere's facet error 2R(1 − cos(π/segments)) changes d by at most that.
+* Map quantisation: 16-bit codes, reach/65535 in d.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+import os
+import shutil
+
+import numpy as np
+import pytest
+
+R_THIN = 0.08
+R_THICK = 0.24
+X_OFFSET = 0.4
+REACH = 0.6           # ≥ the longest chord 2·R_THICK = 0.48, so no ray is clipped
+ATTENUATION = 0.15    # scene units; exp(−d/A) = 0.49 (thin) and 0.12 (thick): both well above black
+RAYS = 32
+SEGMENTS = 48
+SIZE = 96
+TERM = "distortion=0&power=1&scale=1&ambient=0&fill=0&az=0&el=0"
+
+
+def _chromium_or_skip():
+    from thickbake.preview.still import CHROMIUM_NAMES
+
+    if os.environ.get("THICKBAKE_CHROMIUM") or any(shutil.which(n) for n in CHROMIUM_NAMES):
+        return
+    if os.environ.get("CI"):
+        pytest.fail("Chromium is missing (CI installs it in .ci/run)")
+    pytest.skip("Chromium is not installed (apt-get install chromium)")
+
+
+def two_spheres(path):
+    """Write the two-sphere OBJ: the thin sphere at x = −X with UVs in the left half, the thick at +X right."""
+    import trimesh
+
+    from thickbake.checks.shapes import sphere
+
+    vertices, faces, uvs = [], [], []
+    for radius, x, u0 in ((R_THIN, -X_OFFSET, 0.0), (R_THICK, X_OFFSET, 0.5)):
+        mesh = sphere(radius, segments=SEGMENTS).mesh
+        faces.append(np.asarray(mesh.faces) + sum(len(v) for v in vertices))
+        vertices.append(np.asarray(mesh.vertices) + [x, 0.0, 0.0])
+        uv = np.asarray(mesh.visual.uv, np.float64)
+        uvs.append(np.column_stack([u0 + 0.5 * uv[:, 0], uv[:, 1]]))
+    mesh = trimesh.Trimesh(np.vstack(vertices), np.vstack(faces), process=False,
+                           visual=trimesh.visual.TextureVisuals(uv=np.vstack(uvs)))
+    mesh.export(path)
+    return path
+
+
+@pytest.fixture(scope="module")
+def baked(tmp_path_factory):
+    """(asset path, map path) of the two spheres baked by thickbake at 128×128."""
+    from thickbake.pipeline.driver import bake
+
+    folder = tmp_path_factory.mktemp("preview")
+    asset = two_spheres(folder / "spheres.obj")
+    result = bake(str(asset), size=(128, 128), rays=RAYS, reach=REACH, seed=1)
+    out = folder / "spheres.thickness.png"
+    result.write(out)
+    return asset, out
+
+
+def _linear(srgb_codes: np.ndarray) -> np.ndarray:
+    """8-bit sRGB codes → linear values (IEC 61966-2-1)."""
+    c = np.asarray(srgb_codes, np.float64) / 255.0
+    return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+
+
+def disc_medians(png: bytes) -> tuple[float, float, int, int]:
+    """Median linear red value of the left and the right disc (eroded by 3 px), and their pixel counts."""
+    from PIL import Image
+    from scipy import ndimage
+
+    rgb = np.asarray(Image.open(io.BytesIO(png)).convert("RGB"))
+    lit = rgb.max(axis=2) > 8  # background is black
+    half = rgb.shape[1] // 2
+    out = []
+    for side in (slice(0, half), slice(half, None)):
+        mask = ndimage.binary_erosion(lit[:, side], iterations=3)
+        values = _linear(rgb[:, side, 0][mask])
+        out.append((float(np.median(values)) if values.size else 0.0, int(mask.sum())))
+    return out[0][0], out[1][0], out[0][1], out[1][1]
+
+
+def render(asset, maps, **params):
+    from thickbake.preview.page import ViewSettings, build_preview
+    from thickbake.preview.still import render_still
+
+    preview = build_preview(str(asset), [str(m) for m in maps],
+                            ViewSettings(attenuation=ATTENUATION, background="#000000"))
+    still = render_still(preview.html, 4 * SIZE, 2 * SIZE, params=TERM)
+    return preview, still
+
+
+def expected_ratio() -> tuple[float, float]:
+    """(exp(−d_thin/A) / exp(−d_thick/A), its allowed relative error) from the formula and the error budget."""
+    d_thin, d_thick = 4 * R_THIN / 3, 4 * R_THICK / 3
+    ratio = math.exp((d_thick - d_thin) / ATTENUATION)
+    mc = 3 * 1.25 * math.sqrt(2 - 16 / 9) / (4 / 3) / math.sqrt(RAYS * 100)          # relative in d
+    facets = 2 * R_THICK * (1 - math.cos(math.pi / SEGMENTS))                         # scene units
+    codes = REACH / 65535
+    d_err = mc * d_thick + facets + codes                                              # each disc, scene units
+    srgb = 0.006                                                                       # per disc, relative
+    return ratio, 2 * (d_err / ATTENUATION + srgb)
+
+
+def test_thin_sphere_glows_more_by_the_formulas_margin(baked):
+    _chromium_or_skip()
+    asset, map_path = baked
+    preview, still = render(asset, [map_path])
+    assert still.errors == [] and still.webgl2
+    thin, thick, n_thin, n_thick = disc_medians(still.png)
+    assert n_thin > 100 and n_thick > 100, "a disc is missing from the still"
+    ratio, rel = expected_ratio()
+    assert thin > thick
+    assert abs(thin / thick / ratio - 1) < rel, (thin, thick, thin / thick, ratio, rel)
+
+
+def test_the_shader_trusts_the_sidecar_an_inverted_claim_flips_the_order(baked, tmp_path):
+    """The same image under a sidecar that claims it is inverted decodes to reach − d: the thin sphere now
+    reads as the thicker one and goes darker, by the ratio the formula gives for the swapped values."""
+    _chromium_or_skip()
+    asset, map_path = baked
+    shutil.copy(map_path, tmp_path / map_path.name)
+    side = json.loads(map_path.with_suffix(".json").read_text())
+    side["inverted"] = True
+    side["encoding"]["offset"], side["encoding"]["scale"] = REACH, -REACH
+    (tmp_path / map_path.with_suffix(".json").name).write_text(json.dumps(side))
+    _, still = render(asset, [tmp_path / map_path.name])
+    assert still.errors == []
+    thin, thick, _, _ = disc_medians(still.png)
+    ratio, rel = expected_ratio()
+    # decoded: REACH − d, so the thin disc's brightness over the thick one's is 1 / ratio
+    assert thin < thick
+    assert abs(thick / thin / ratio - 1) < rel, (thin, thick, thick / thin, ratio, rel)
+
+
+def test_page_is_self_contained_and_draws(baked, tmp_path):
+    """No URL outside the page (three.js is embedded from the vendored, hash-checked files); the still
+    has a non-empty WebGL canvas and no console error in every view mode."""
+    _chromium_or_skip()
+    from thickbake.preview.page import VENDOR, build_preview
+    from thickbake.preview.still import render_still
+
+    hashes = {line.split()[1]: line.split()[0] for line in (VENDOR / "README.md").read_text().splitlines()
+              if line.startswith("    ") and len(line.split()) == 2}
+    import hashlib
+    for name, digest in hashes.items():
+        assert hashlib.sha256((VENDOR / name).read_bytes()).hexdigest() == digest, name
+    assert "MIT License" in (VENDOR / "LICENSE").read_text()
+    asset, map_path = baked
+    preview = build_preview(str(asset), [str(map_path)])
+    assert "http://" not in preview.html.replace("http://www.w3.org", "") and "https://" not in preview.html
+    for mode in ("surface", "uv"):
+        still = render_still(preview.html, 160, 120, params=f"mode={mode}")
+        assert still.errors == [] and still.webgl2 and still.size == (160, 120)
+        from PIL import Image
+        rgb = np.asarray(Image.open(io.BytesIO(still.png)).convert("RGB")).astype(int)
+        background = rgb[0, 0]
+        assert (np.abs(rgb - background).max(axis=2) > 16).mean() > 0.05, mode
+
+
+def test_cli_preview_writes_page_and_still(baked, tmp_path):
+    _chromium_or_skip()
+    import subprocess
+    import sys
+
+    asset, map_path = baked
+    page, png = tmp_path / "view.html", tmp_path / "still.png"
+    proc = subprocess.run([sys.executable, "-m", "thickbake", "preview", str(asset), str(map_path.with_suffix(".json")),
+                           "-o", str(page), "--png", str(png), "--size", "120x90", "--json", "-"],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    report = json.loads(proc.stdout)
+    assert report["still"]["errors"] == [] and report["faces_covered"] == report["faces"]
+    assert page.stat().st_size > 100_000 and png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_cli_preview_refuses_bad_input_before_writing(baked, tmp_path):
+    import subprocess
+    import sys
+
+    asset, map_path = baked
+    page = tmp_path / "view.html"
+    for extra in (["-o", str(tmp_path / "view.txt")], ["-o", str(page), "--size", "big"],
+                  [str(tmp_path / "missing.png"), "-o", str(page)]):
+        args = [sys.executable, "-m", "thickbake", "preview", str(asset)] + \
+            ([] if "missing" in extra[0] else [str(map_path)]) + extra
+        proc = subprocess.run(args, capture_output=True, text=True, timeout=120)
+        assert proc.returncode == 2 and len(proc.stderr.strip().splitlines()) == 1, proc.stderr
+        assert not page.exists()

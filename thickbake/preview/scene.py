@@ -1,0 +1,266 @@
+"""What a preview shows: the asset's triangles and one entry per map, each decoded by its sidecar.
+
+An entry is one map of one part of the asset — a (material, UV set, UDIM tile) as the sidecar's
+``map_of`` block names it (the whole asset on UV set 0 when the sidecar has none) — with the image as
+stored and the decode the shader applies:
+
+* ``offset``/``scale``/``code_max`` per channel: measure = offset + scale · code / code_max (a float
+  TIFF stores the measure, code_max 1).  An inverted map has offset = full scale and a negative scale,
+  so the shader never needs to know about inversion: it trusts the sidecar.
+* ``kind``: ``thickness`` (scene units, turned into transmission by exp(−d / attenuation distance),
+  or per colour channel by a measured medium's σ_tr) or ``transmission`` (transmittance and the
+  occlusion of the inverted surface are already "1 where light passes").
+* A packed image (a sidecar with a ``channels`` block) gives one entry per channel.
+
+Nothing here bakes: maps and sidecars are read, checked against the asset and handed on.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from thickbake.errors import ThickbakeError
+
+MAP_SUFFIXES = (".png", ".tif", ".tiff", ".exr")
+#: Measures whose value is already the share of light that passes (1 = thin).
+TRANSMISSION_MEASURES = ("transmittance", "occlusion")
+CHANNEL_INDEX = {"r": 0, "g": 1, "b": 2, "a": 3}
+
+
+@dataclass
+class MapEntry:
+    """One map over one part of the asset, ready for the page.
+
+    Attributes
+    ----------
+    label : str
+        Shown in the page's lists (file name and what part of the asset it covers).
+    stored : (h, w, c) uint8, uint16 or float32
+        The image as stored, rows top-down as in the file (row 0 = v 1), c = 1 or 3.
+    code_max : float
+        The stored value that means 1 (255 or 65535 for integer images, 1 for floats).
+    offset, scale : list of float (c values)
+        measure = offset + scale · stored / code_max, per channel.
+    kind : str
+        ``"thickness"`` or ``"transmission"``.
+    measure : str
+        The sidecar's measure name.
+    sigma_per_unit : list of 3 float or None
+        A measured medium's transport coefficient per scene unit, per colour channel.
+    uv_set : int
+    material : str, int or None
+    tile : int or None
+        UDIM tile (1001 …) or None for the 0–1 square.
+    show_range : (float, float)
+        Measure values drawn black and white in the map views.
+    units : str
+    """
+
+    label: str
+    path: Path
+    stored: np.ndarray
+    code_max: float
+    offset: list
+    scale: list
+    kind: str
+    measure: str
+    sigma_per_unit: list | None
+    uv_set: int
+    material: object
+    tile: int | None
+    show_range: tuple
+    units: str
+
+    @property
+    def tile_offset(self) -> tuple[int, int]:
+        """(u, v) of the tile's lower-left corner: UDIM 1001 + u + 10 v (MaterialX v1.39)."""
+        if self.tile is None:
+            return (0, 0)
+        index = int(self.tile) - 1001
+        return (index % 10, index // 10)
+
+    def decoded(self) -> np.ndarray:
+        """(h, w, c) float64 measure values (the sidecar's formula)."""
+        stored = np.asarray(self.stored, np.float64) / float(self.code_max)
+        return np.asarray(self.offset) + np.asarray(self.scale) * stored
+
+
+def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, dict]:
+    """A MAP or SIDECAR argument → (image path, sidecar dict)."""
+    from thickbake.maps.files import read_sidecar
+
+    path = Path(arg)
+    if not path.exists():
+        raise ThickbakeError("no such file", path=path, fix="check the path")
+    if path.suffix.lower() == ".json":
+        try:
+            side = json.loads(path.read_text())
+        except (OSError, ValueError) as exc:
+            raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=path, fix="bake the map again") from None
+        if not isinstance(side, dict):
+            raise ThickbakeError("the sidecar is not a JSON object", path=path, fix="give a sidecar written by thickbake")
+        name = side.get("map") or side.get("image")
+        if not isinstance(name, str):
+            raise ThickbakeError("the sidecar names no map image", path=path, fix="give the map itself")
+        image = path.parent / name
+        if not image.exists():
+            raise ThickbakeError(f"the sidecar's map {name} is missing", path=image, fix="keep the map beside its sidecar")
+        return image, side
+    if path.suffix.lower() not in MAP_SUFFIXES:
+        raise ThickbakeError(f"{path.suffix or '(no suffix)'} is not a map", path=path,
+                             fix="give maps (.png, .tif, .exr) or their .json sidecars after the asset")
+    return path, read_sidecar(path)
+
+
+def _read_pixels(path: Path) -> np.ndarray:
+    """(h, w, c) samples of a map image (c = 1, 3 or 4), as stored."""
+    if path.suffix.lower() == ".exr":
+        try:
+            from thickbake.maps.exr import read_exr  # written by the EXR output, when present
+        except ImportError:
+            raise ThickbakeError("this thickbake cannot read EXR maps", path=path, fix="give the PNG or TIFF map") from None
+        image = np.asarray(read_exr(path))
+    else:
+        image = _read_png_or_tiff(path)
+    if image.ndim == 2:
+        image = image[..., None]
+    return image
+
+
+def _read_png_or_tiff(path: Path) -> np.ndarray:
+    from thickbake.maps.files import read_image
+
+    return read_image(path)
+
+
+def _channel_decode(enc: dict, where: Path) -> tuple[float, float, float | None]:
+    try:
+        offset = float(enc["offset"])
+        scale = float(enc["scale"])
+        code_max = enc.get("code_max")
+        code_max = None if code_max is None else float(code_max)
+    except (KeyError, TypeError, ValueError):
+        raise ThickbakeError("the sidecar's encoding lacks offset or scale", path=where, fix="bake the map again") from None
+    return offset, scale, code_max
+
+
+def entries_of(arg: str | os.PathLike) -> list[MapEntry]:
+    """The entries one MAP or SIDECAR argument gives (several for a packed image)."""
+    from thickbake.maps.files import sidecar_path
+
+    image_path, side = resolve_map_argument(arg)
+    where = sidecar_path(image_path)
+    pixels = _read_pixels(image_path)
+    entries = []
+    if isinstance(side.get("channels"), dict):
+        for channel, info in side["channels"].items():
+            if channel not in CHANNEL_INDEX or CHANNEL_INDEX[channel] >= pixels.shape[2] or not isinstance(info, dict):
+                continue
+            enc = info.get("encoding", info)
+            entries.append(_entry(image_path, f"{image_path.name} ({channel})", pixels[..., CHANNEL_INDEX[channel]][..., None],
+                                  info, enc, where))
+        if not entries:
+            raise ThickbakeError("the packed image's sidecar describes no channel it holds", path=where,
+                                 fix="give the image written by --pack-into with its sidecar")
+        return entries
+    if not isinstance(side.get("encoding"), dict) or side.get("measure") is None:
+        raise ThickbakeError("the sidecar has no encoding or measure", path=where, fix="give maps written by 'thickbake bake'")
+    if pixels.shape[2] == 4:
+        pixels = pixels[..., :3]
+    elif pixels.shape[2] == 2:
+        pixels = pixels[..., :1]
+    return [_entry(image_path, image_path.name, pixels, side, side["encoding"], where)]
+
+
+def _entry(image_path: Path, label: str, pixels: np.ndarray, side: dict, enc: dict, where: Path) -> MapEntry:
+    offset, scale, code_max = _channel_decode(enc, where)
+    channels = pixels.shape[2]
+    if code_max is None:
+        if pixels.dtype.kind != "f":
+            raise ThickbakeError(f"the sidecar describes a float map but the image holds {pixels.dtype} codes",
+                                 path=image_path, fix="keep each map with the sidecar written beside it")
+        code_max = 1.0
+    elif pixels.dtype.kind == "f":
+        raise ThickbakeError("the sidecar describes integer codes but the image holds floats", path=image_path,
+                             fix="keep each map with the sidecar written beside it")
+    elif code_max < float(pixels.max(initial=0)):
+        raise ThickbakeError(f"the image holds codes above the sidecar's code_max {code_max:g}", path=image_path,
+                             fix="keep each map with the sidecar written beside it")
+    measure = str(side.get("measure") or enc.get("measure") or "thickness")
+    kind = "transmission" if measure in TRANSMISSION_MEASURES else "thickness"
+    medium = side.get("medium") if isinstance(side.get("medium"), dict) else None
+    sigma = None
+    if kind == "thickness" and medium and medium.get("sigma_tr_per_mm") and medium.get("mm_per_unit"):
+        sigma = [float(s) * float(medium["mm_per_unit"]) for s in medium["sigma_tr_per_mm"]][:3]
+    map_of = side.get("map_of") if isinstance(side.get("map_of"), dict) else {}
+    tile = map_of.get("tile")
+    material = map_of.get("material")
+    uv_set = int(map_of.get("uv_set") or 0)
+    if material is not None or tile is not None or uv_set:
+        parts = [f"material {material}" if material is not None else None, f"UV {uv_set}" if uv_set else None,
+                 f"tile {tile}" if tile is not None else None]
+        label += " — " + ", ".join(p for p in parts if p)
+    entry = MapEntry(label=label, path=image_path, stored=pixels, code_max=float(code_max),
+                     offset=[offset] * channels, scale=[scale] * channels, kind=kind, measure=measure,
+                     sigma_per_unit=sigma, uv_set=uv_set, material=material,
+                     tile=None if tile is None else int(tile), show_range=(0.0, 1.0),
+                     units=str(side.get("units") or ("scene units" if kind == "thickness" else "unitless")))
+    entry.show_range = _show_range(entry)
+    return entry
+
+
+def _show_range(entry: MapEntry) -> tuple[float, float]:
+    """Black and white of the map views: 0 and the 99.5th percentile of the non-zero decoded values
+    (the contact sheet's stretch), or 0 … 1 for a transmission."""
+    if entry.kind == "transmission":
+        return (0.0, 1.0)
+    values = entry.decoded()
+    values = values[np.isfinite(values) & (values > 0)]
+    top = float(np.percentile(values, 99.5)) if values.size else 1.0
+    return (0.0, top if top > 0 else 1.0)
+
+
+def entry_faces(asset, entry: MapEntry) -> np.ndarray:
+    """(k,) int64 indices of the asset's faces this entry's map covers.
+
+    A sidecar without ``map_of`` covers every face with UVs (the one-map-per-asset bake).  Otherwise
+    the faces of the named material whose UV centroid on the named UV set lies in the named tile.
+    """
+    triangle_uv, has_uv = _uv_set(asset, entry.uv_set)
+    keep = has_uv.copy()
+    if entry.tile is not None:
+        cell = np.floor(triangle_uv.mean(axis=1)).astype(np.int64)
+        keep &= (cell[:, 0] == entry.tile_offset[0]) & (cell[:, 1] == entry.tile_offset[1])
+    if entry.material is not None:
+        names = _material_keys(asset)
+        if names is not None:
+            keep &= names == str(entry.material)
+    return np.flatnonzero(keep).astype(np.int64)
+
+
+def _uv_set(asset, uv_set: int) -> tuple[np.ndarray, np.ndarray]:
+    if hasattr(asset, "uv_set"):
+        return asset.uv_set(uv_set)
+    if uv_set != 0:
+        raise ThickbakeError(f"the map was baked on UV set {uv_set}, and this thickbake reads only the first",
+                             path=asset.path or asset.name, fix="give a map of UV set 0")
+    return asset.triangle_uv, asset.has_uv
+
+
+def _material_keys(asset) -> np.ndarray | None:
+    """(f,) str key of each face's material (as a sidecar's map_of names it), or None if unknown."""
+    face_material = getattr(asset, "face_material", None)
+    materials = getattr(asset, "materials", None)
+    if face_material is None or not materials:
+        return None
+    keys = np.array([str(getattr(m, "key", getattr(m, "name", i))) for i, m in enumerate(materials)] + ["None"])
+    index = np.where((face_material >= 0) & (face_material < len(materials)), face_material, len(materials))
+    return keys[index]
+
+
+__all__ = ["MapEntry", "entries_of", "entry_faces", "resolve_map_argument", "MAP_SUFFIXES"]
