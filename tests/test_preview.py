@@ -224,3 +224,34 @@ def test_cli_preview_refuses_bad_input_before_writing(baked, tmp_path):
         proc = subprocess.run(args, capture_output=True, text=True, timeout=120)
         assert proc.returncode == 2 and len(proc.stderr.strip().splitlines()) == 1, proc.stderr
         assert not page.exists()
+
+
+def test_batch_previews_put_stills_and_viewer_links_in_the_report(tmp_path):
+    """``batch --previews``: a viewer page beside the map, the report links it and embeds a still whose
+    canvas is not empty; a second run of the up-to-date folder leaves the page's bytes untouched."""
+    _chromium_or_skip()
+    import base64
+    import re
+
+    from PIL import Image
+
+    from thickbake.batch.plan import run_batch
+
+    src = tmp_path / "src"
+    src.mkdir()
+    two_spheres(src / "spheres.obj")
+    (src / "thickbake.toml").write_text("[defaults]\nsize = 64\nrays = 8\n")
+    outcome = run_batch(src, tmp_path / "out", previews=True)
+    assert outcome.exit_code == 0
+    row = outcome.report["assets"][0]
+    page = tmp_path / "out" / row["viewer"]
+    assert page.is_file() and row["preview_seconds"] > 0
+    html_text = (tmp_path / "out" / "report.html").read_text()
+    assert f'href="{row["viewer"]}"' in html_text
+    stills = re.findall(r'class="still"[^>]*src="data:image/png;base64,([^"]+)"', html_text)
+    assert len(stills) == 1
+    rgb = np.asarray(Image.open(io.BytesIO(base64.b64decode(stills[0]))).convert("RGB")).astype(int)
+    assert (np.abs(rgb - rgb[0, 0]).max(axis=2) > 16).mean() > 0.01
+    before = page.stat().st_mtime_ns
+    again = run_batch(src, tmp_path / "out", previews=True)
+    assert again.report["assets"][0]["status"] == "skipped" and page.stat().st_mtime_ns == before

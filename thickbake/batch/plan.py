@@ -441,7 +441,7 @@ class _Interrupts:
 # ---------------------------------------------------------------------------- running
 def run_batch(src, out, config=None, *, jobs: int | None = None, force: bool = False, cluster: str | None = None,
               progress: Callable[[float, int, str], None] | None = None, notify: Callable[[str], None] | None = None,
-              worker: Callable[[dict], dict] = bake_asset) -> BatchOutcome:
+              worker: Callable[[dict], dict] = bake_asset, previews: bool = False) -> BatchOutcome:
     """Bake every asset under ``src`` that is not up to date into ``out`` and write the report.
 
     Parameters
@@ -462,6 +462,9 @@ def run_batch(src, out, config=None, *, jobs: int | None = None, force: bool = F
         Receives one line per failure and other messages worth a user's attention.
     worker : callable(task) -> dict
         The per-asset function (a module-level function, so it can be sent to processes).
+    previews : bool
+        Also write each asset's viewer page beside its map and put a back-lit still of it, rendered
+        by headless Chromium, into the report (:mod:`thickbake.batch.previews`).
 
     Returns
     -------
@@ -502,9 +505,14 @@ def run_batch(src, out, config=None, *, jobs: int | None = None, force: bool = F
                 interrupted = _run_jobs(plan, todo, runner, threads, progress, notify)
             from thickbake.batch.report import batch_thumbnails, build_report, write_reports
 
+            shown = {}
+            if previews and not interrupted:
+                from thickbake.batch.previews import batch_previews
+
+                shown = batch_previews(plan, stills=True, notify=notify, progress=progress)
             report = build_report(plan, started_at, time.perf_counter() - started, cores, jobs_used, threads,
-                                  cluster, force, interrupted)
-            write_reports(plan.out, report, batch_thumbnails(plan))
+                                  cluster, force, interrupted, shown)
+            write_reports(plan.out, report, batch_thumbnails(plan), {k: v["still"] for k, v in shown.items()})
     finally:
         if runner is not None:
             runner.close()

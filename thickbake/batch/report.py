@@ -82,10 +82,13 @@ def thumbnail_from_file(map_path: str | os.PathLike) -> bytes | None:
         return None
 
 
-def write_reports(out_dir: str | os.PathLike, report: dict, thumbnails: dict[str, bytes]) -> tuple[Path, Path]:
+def write_reports(out_dir: str | os.PathLike, report: dict, thumbnails: dict[str, bytes],
+                  stills: dict[str, bytes | None] | None = None) -> tuple[Path, Path]:
     """Write ``report.json`` and ``report.html`` into ``out_dir`` atomically; return their paths.
 
     ``thumbnails`` maps each map's path relative to OUT (``report["assets"][i]["maps"][j]["map"]``) to PNG bytes.
+    ``stills`` maps an asset's source path (``report["assets"][i]["source"]``) to the PNG bytes of its
+    back-lit still.
     """
     from thickbake.maps.files import atomic_write_bytes, json_bytes
 
@@ -93,15 +96,25 @@ def write_reports(out_dir: str | os.PathLike, report: dict, thumbnails: dict[str
     json_path = out_dir / REPORT_JSON
     html_path = out_dir / REPORT_HTML
     atomic_write_bytes(json_path, json_bytes(report))
-    atomic_write_bytes(html_path, render_html(report, thumbnails).encode("utf-8"))
+    atomic_write_bytes(html_path, render_html(report, thumbnails, stills).encode("utf-8"))
     return json_path, html_path
 
 
 # ---------------------------------------------------------------------------- report content
 def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: int,
-                 threads: int | None, cluster: str | None, force: bool, interrupted: bool) -> dict:
-    """The content of ``report.json`` for a :class:`thickbake.batch.BatchPlan` whose jobs have run."""
+                 threads: int | None, cluster: str | None, force: bool, interrupted: bool,
+                 previews: dict | None = None) -> dict:
+    """The content of ``report.json`` for a :class:`thickbake.batch.BatchPlan` whose jobs have run.
+
+    ``previews``: per asset source path, its viewer page (relative to OUT) and the seconds its page and
+    still took (:func:`thickbake.batch.previews.batch_previews`).
+    """
     rows = [_report_row(job) for job in plan.jobs]
+    for row in rows:
+        shown = (previews or {}).get(row["source"])
+        if shown:
+            row["viewer"] = shown["page"]
+            row["preview_seconds"] = round(shown["seconds"], 3)
     count = {status: sum(1 for r in rows if r["status"] == status)
              for status in ("baked", "skipped", "failed", "not started")}
     baked = [j for j in plan.jobs if j.status == "baked"]
@@ -129,6 +142,7 @@ def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: i
             "bake_seconds": round(sum(float(m["data"].get("seconds", 0.0)) for j in baked for m in j.maps), 3),
             "maps": sum(len(r["maps"]) for r in rows),
             "warnings": sum(len(r["warnings"]) for r in rows),
+            **({"preview_seconds": round(sum(v["seconds"] for v in previews.values()), 3)} if previews else {}),
         },
         "assets": rows,
     }
@@ -213,11 +227,12 @@ h1{font-size:20px;margin:0 0 4px}h2{font-size:16px;margin:24px 0 8px}
 .badge.baked{background:#2e7d32}.badge.skipped{background:#757575}.badge.failed{background:#c62828}.badge.not-started{background:#ef6c00}
 dl{display:grid;grid-template-columns:auto 1fr;gap:0 8px;margin:4px 0 0}dt{color:#777}dd{margin:0;font-variant-numeric:tabular-nums}
 .warnings{margin:4px 0 0;padding-left:14px;color:#8a5a00;font-size:11px}.warnings li{word-break:break-word}
+.card img.still{background:#101418;image-rendering:auto}.card .viewer{display:block;text-align:center;font-size:12px;margin:0 0 6px}
 .error{color:#c62828;font-family:ui-monospace,monospace;font-size:11px;word-break:break-word}
 """
 
 
-def render_html(report: dict, thumbnails: dict[str, bytes]) -> str:
+def render_html(report: dict, thumbnails: dict[str, bytes], stills: dict[str, bytes | None] | None = None) -> str:
     """The contact sheet as one HTML string (no external resources)."""
     esc = html.escape
     totals = report["totals"]
@@ -251,11 +266,12 @@ def render_html(report: dict, thumbnails: dict[str, bytes]) -> str:
         parts.append("</ul>")
     parts.append("<h2>Maps</h2><div class=\"sheet\">")
     for row in rows:
+        still = (stills or {}).get(row["source"])
         if row.get("maps"):
-            for item in row["maps"]:
-                parts.append(_card(_map_card_row(row, item), thumbnails.get(item["map"])))
+            for i, item in enumerate(row["maps"]):
+                parts.append(_card(_map_card_row(row, item), thumbnails.get(item["map"]), still if i == 0 else None))
         else:
-            parts.append(_card(row, thumbnails.get(row["map"])))
+            parts.append(_card(row, thumbnails.get(row["map"]), still))
     parts.append("</div></body></html>\n")
     return "\n".join(parts)
 
@@ -269,7 +285,7 @@ def _map_card_row(row: dict, item: dict) -> dict:
     return card
 
 
-def _card(row: dict, thumbnail: bytes | None) -> str:
+def _card(row: dict, thumbnail: bytes | None, still: bytes | None = None) -> str:
     esc = html.escape
     status = row["status"]
     css = status.replace(" ", "-")
@@ -278,6 +294,11 @@ def _card(row: dict, thumbnail: bytes | None) -> str:
         picture = f'<img alt="{esc(row["map"])}" src="data:image/png;base64,{data}">'
     else:
         picture = '<div class="empty">no map</div>'
+    if still:
+        data = base64.b64encode(still).decode("ascii")
+        picture += f'<img class="still" alt="lit from behind" title="lit from behind" src="data:image/png;base64,{data}">'
+    if row.get("viewer"):
+        picture += f'<a class="viewer" href="{esc(row["viewer"])}">open the back-lit viewer</a>'
     figures = []
     if row.get("size"):
         figures.append(("size", f"{row['size'][0]}×{row['size'][1]}"))

@@ -10,7 +10,8 @@ from thickbake.errors import ThickbakeError
 EXAMPLES = """examples:
   thickbake batch samples/ -o out/                 bake every asset; samples/thickbake.toml holds the rules
   thickbake batch assets/ -o maps/ --dry-run -v    what would be baked, why, and with which settings
-  thickbake batch assets/ -o maps/ --cluster tcp://10.0.0.5:8786"""
+  thickbake batch assets/ -o maps/ --cluster tcp://10.0.0.5:8786
+  thickbake batch samples/ -o out/ --previews      report.html with back-lit stills and viewer pages"""
 
 
 def add_parser(sub, common) -> None:
@@ -27,6 +28,9 @@ def add_parser(sub, common) -> None:
     p.add_argument("--cluster", metavar="ADDRESS", help="dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
     p.add_argument("--strict", action="store_true",
                    help="treat every warning in the report (skipped assets' included) as a failure: exit 1")
+    p.add_argument("--previews", action="store_true",
+                   help="also write each asset's back-lit viewer page beside its map and a still of it into "
+                        "report.html (headless Chromium; a few seconds per asset)")
     p.set_defaults(func=run)
 
 
@@ -53,7 +57,7 @@ def run(args) -> int:
 
     try:
         outcome = run_batch(args.src, args.output, args.config, jobs=args.jobs, force=args.force,
-                            cluster=args.cluster, progress=bar, notify=notify)
+                            cluster=args.cluster, progress=bar, notify=notify, previews=args.previews)
     finally:
         bar.close()
     if args.verbose:

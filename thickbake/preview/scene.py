@@ -118,24 +118,22 @@ def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, dict]:
 
 
 def _read_pixels(path: Path) -> np.ndarray:
-    """(h, w, c) samples of a map image (c = 1, 3 or 4), as stored."""
-    if path.suffix.lower() == ".exr":
+    """(h, w, c) samples of a map image (c = 1, 3 or 4), as stored (16-bit colour PNGs keep 16 bits)."""
+    from thickbake.maps.files import read_image
+
+    if path.suffix.lower() == ".png":
+        from thickbake.maps.png import decode_png
+
         try:
-            from thickbake.maps.exr import read_exr  # written by the EXR output, when present
-        except ImportError:
-            raise ThickbakeError("this thickbake cannot read EXR maps", path=path, fix="give the PNG or TIFF map") from None
-        image = np.asarray(read_exr(path))
+            image = np.asarray(decode_png(path.read_bytes()))
+        except Exception as exc:  # the decoder raises its own types for broken files
+            raise ThickbakeError(f"cannot read the image ({type(exc).__name__})", path=path,
+                                 fix="give a PNG written by thickbake") from None
     else:
-        image = _read_png_or_tiff(path)
+        image = np.asarray(read_image(path))
     if image.ndim == 2:
         image = image[..., None]
     return image
-
-
-def _read_png_or_tiff(path: Path) -> np.ndarray:
-    from thickbake.maps.files import read_image
-
-    return read_image(path)
 
 
 def _channel_decode(enc: dict, where: Path) -> tuple[float, float, float | None]:
