@@ -19,7 +19,7 @@ import pytest
 from thickbake.checks import shapes
 from thickbake.cli.main import build_parser, main
 
-COMMANDS = ("bake", "shapes", "verify", "compare", "batch")
+COMMANDS = ("bake", "shapes", "verify", "compare", "batch", "preview")
 TINY = ("--size", "16", "--rays", "4")
 
 
@@ -54,6 +54,7 @@ def args_for(command: str, assets, tmp_path) -> list:
         "verify": ["verify", assets / "box.obj", *TINY],
         "compare": ["compare", assets / "a.png", assets / "a.png"],
         "batch": ["batch", tmp_path / "src", "-o", tmp_path / "out", "--jobs", "1"],
+        "preview": ["preview", assets / "box.obj", assets / "a.png", "-o", tmp_path / "view.html"],
     }[command]
 
 

@@ -24,8 +24,7 @@ EXAMPLES = """examples:
   thickbake bake samples/candle.glb                  map + sidecar beside the input
   thickbake verify                                   the bake against closed forms
   thickbake batch samples/ -o out/                   a whole folder, with report.html
-  thickbake preview samples/candle.glb samples/candle.thickness.png -o view.html
-                                                     the asset lit from behind through its map
+  thickbake preview samples/candle.glb --png lit.png  the candle lit from behind through its map
 
 exit codes: 0 ok, 1 a check or an asset failed, 2 bad input or options, 70 internal error, 130 interrupted"""
 
