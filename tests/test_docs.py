@@ -46,7 +46,7 @@ def test_layout_lists_every_module_once_and_nothing_else():
     assert scripts <= layout_entries(), f"scripts without a line in README's Layout: {sorted(scripts - layout_entries())}"
 
 
-@pytest.mark.parametrize("command", ["bake", "shapes", "verify", "compare", "batch"])
+@pytest.mark.parametrize("command", ["bake", "shapes", "verify", "compare", "batch", "preview"])
 def test_every_option_is_documented(command, capsys):
     with pytest.raises(SystemExit) as done:
         main([command, "--help"])
