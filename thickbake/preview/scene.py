@@ -91,30 +91,43 @@ class MapEntry:
 
 
 def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, dict]:
-    """A MAP or SIDECAR argument → (image path, sidecar dict)."""
-    from thickbake.maps.files import read_sidecar
+    """A MAP or SIDECAR argument → (image path, sidecar dict).
+
+    A map's sidecar is validated by :func:`thickbake.maps.sidecar.parse_sidecar`; a packed image's
+    sidecar (a ``channels`` block, one decode per channel) is checked channel by channel later.
+    """
+    from thickbake.maps.sidecar import parse_sidecar, sidecar_path
 
     path = Path(arg)
     if not path.exists():
         raise ThickbakeError("no such file", path=path, fix="check the path")
     if path.suffix.lower() == ".json":
-        try:
-            side = json.loads(path.read_text())
-        except (OSError, ValueError) as exc:
-            raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=path, fix="bake the map again") from None
-        if not isinstance(side, dict):
-            raise ThickbakeError("the sidecar is not a JSON object", path=path, fix="give a sidecar written by thickbake")
-        name = side.get("map") or side.get("image")
-        if not isinstance(name, str):
-            raise ThickbakeError("the sidecar names no map image", path=path, fix="give the map itself")
-        image = path.parent / name
-        if not image.exists():
-            raise ThickbakeError(f"the sidecar's map {name} is missing", path=image, fix="keep the map beside its sidecar")
-        return image, side
-    if path.suffix.lower() not in MAP_SUFFIXES:
+        side_file = path
+    elif path.suffix.lower() in MAP_SUFFIXES:
+        side_file = sidecar_path(path)
+    else:
         raise ThickbakeError(f"{path.suffix or '(no suffix)'} is not a map", path=path,
                              fix="give maps (.png, .tif, .exr) or their .json sidecars after the asset")
-    return path, read_sidecar(path)
+    try:
+        side = json.loads(side_file.read_text("utf-8"))
+    except FileNotFoundError:
+        raise ThickbakeError("the map has no sidecar", path=side_file,
+                             fix="keep the .json written next to each map by 'thickbake bake'") from None
+    except (OSError, ValueError) as exc:
+        raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=side_file, fix="bake the map again") from None
+    if not isinstance(side, dict):
+        raise ThickbakeError("the sidecar is not a JSON object", path=side_file, fix="give a sidecar written by thickbake")
+    if not isinstance(side.get("channels"), dict):
+        side = parse_sidecar(side, side_file).data
+    if path.suffix.lower() != ".json":
+        return path, side
+    name = side.get("map") or side.get("image")
+    if not isinstance(name, str):
+        raise ThickbakeError("the sidecar names no map image", path=path, fix="give the map itself")
+    image = path.parent / name
+    if not image.exists():
+        raise ThickbakeError(f"the sidecar's map {name} is missing", path=image, fix="keep the map beside its sidecar")
+    return image, side
 
 
 def _read_pixels(path: Path) -> np.ndarray:
@@ -149,7 +162,7 @@ def _channel_decode(enc: dict, where: Path) -> tuple[float, float, float | None]
 
 def entries_of(arg: str | os.PathLike) -> list[MapEntry]:
     """The entries one MAP or SIDECAR argument gives (several for a packed image)."""
-    from thickbake.maps.files import sidecar_path
+    from thickbake.maps.sidecar import sidecar_path
 
     image_path, side = resolve_map_argument(arg)
     where = sidecar_path(image_path)
@@ -193,7 +206,10 @@ def _entry(image_path: Path, label: str, pixels: np.ndarray, side: dict, enc: di
     kind = "transmission" if measure in TRANSMISSION_MEASURES else "thickness"
     medium = side.get("medium") if isinstance(side.get("medium"), dict) else None
     sigma = None
-    if kind == "thickness" and medium and medium.get("sigma_tr_per_mm") and medium.get("mm_per_unit"):
+    if medium and channels == 3:
+        kind = "transmission"  # a medium bake stores RGB transmittance exp(-sigma_tr * d) per channel
+    elif kind == "thickness" and medium and medium.get("sigma_tr_per_mm") and medium.get("mm_per_unit"):
+        # grey thickness with the medium recorded: the shader applies exp(-sigma_tr * mm_per_unit * d)
         sigma = [float(s) * float(medium["mm_per_unit"]) for s in medium["sigma_tr_per_mm"]][:3]
     map_of = side.get("map_of") if isinstance(side.get("map_of"), dict) else {}
     tile = map_of.get("tile")
