@@ -255,3 +255,48 @@ def test_batch_previews_put_stills_and_viewer_links_in_the_report(tmp_path):
     before = page.stat().st_mtime_ns
     again = run_batch(src, tmp_path / "out", previews=True)
     assert again.report["assets"][0]["status"] == "skipped" and page.stat().st_mtime_ns == before
+
+
+def test_several_maps_per_asset_each_on_its_own_faces(tmp_path):
+    """One glTF, two materials whose UVs both fill the 0–1 square, the thick sphere's islands spread over
+    UDIM tiles 1001 and 1002: three maps.  Only if the page puts each map on the faces its sidecar's
+    ``map_of`` names (material, UV set, tile) do the discs show the same exp((d_thick − d_thin)/A) ratio
+    as the one-map body above; a map on the wrong sphere or tile would give ratio 1 or its inverse."""
+    _chromium_or_skip()
+    import subprocess
+    import sys
+
+    import trimesh
+
+    from thickbake.checks.shapes import sphere
+
+    def part(radius, name, udim):
+        mesh = sphere(radius, segments=SEGMENTS).mesh
+        uv = np.asarray(mesh.visual.uv, np.float64).copy()
+        if udim:  # faces right of u = 0.5 move one tile right, whole islands at once (by vertex: the
+            # islands are split at seams, so each vertex belongs to one island)
+            uv[uv[:, 0] > 0.5, 0] += 1.0
+        material = trimesh.visual.material.PBRMaterial(name=name, baseColorFactor=[200, 200, 200, 255])
+        return trimesh.Trimesh(mesh.vertices, mesh.faces, vertex_normals=mesh.vertex_normals, process=False,
+                               visual=trimesh.visual.TextureVisuals(uv=uv, material=material))
+
+    scene = trimesh.Scene()
+    for name, radius, x, udim in (("wax", R_THIN, -X_OFFSET, False), ("stone", R_THICK, X_OFFSET, True)):
+        scene.add_geometry(part(radius, name, udim), geom_name=name, node_name=name,
+                           transform=trimesh.transformations.translation_matrix((x, 0, 0)))
+    asset = tmp_path / "pair.glb"
+    asset.write_bytes(scene.export(file_type="glb"))
+    maps = tmp_path / "maps"
+    proc = subprocess.run([sys.executable, "-m", "thickbake", "bake", str(asset), "-o", f"{maps}/", "--size", "96",
+                           "--rays", str(RAYS), "--reach", str(REACH), "-q"], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    sidecars = sorted(maps.glob("*.json"))
+    keys = sorted((json.loads(p.read_text())["map_of"]["material"], json.loads(p.read_text())["map_of"]["tile"])
+                  for p in sidecars)
+    assert keys == [("stone", 1001), ("stone", 1002), ("wax", 1001)], keys
+    preview, still = render(asset, sidecars)
+    assert still.errors == [] and preview.faces_covered == preview.faces
+    thin, thick, n_thin, n_thick = disc_medians(still.png)
+    ratio, rel = expected_ratio()
+    assert n_thin > 100 and n_thick > 100
+    assert abs(thin / thick / ratio - 1) < rel, (thin, thick, thin / thick, ratio, rel)

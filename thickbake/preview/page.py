@@ -128,7 +128,7 @@ def build_preview(asset_source, maps, settings: ViewSettings | None = None,
     faces, warnings = [], []
     seen: dict = {}
     for entry in entries:
-        f = entry_faces(asset, entry)
+        f = entry_faces(asset, entry, entry.map_of_given)
         if not len(f):
             raise ThickbakeError(f"the map covers no face of {asset.name} (material {entry.material}, UV set "
                                  f"{entry.uv_set}, tile {entry.tile})", path=entry.path,

@@ -75,6 +75,7 @@ class MapEntry:
     tile: int | None
     show_range: tuple
     units: str
+    map_of_given: bool = True
 
     @property
     def tile_offset(self) -> tuple[int, int]:
@@ -211,7 +212,9 @@ def _entry(image_path: Path, label: str, pixels: np.ndarray, side: dict, enc: di
     elif kind == "thickness" and medium and medium.get("sigma_tr_per_mm") and medium.get("mm_per_unit"):
         # grey thickness with the medium recorded: the shader applies exp(-sigma_tr * mm_per_unit * d)
         sigma = [float(s) * float(medium["mm_per_unit"]) for s in medium["sigma_tr_per_mm"]][:3]
-    map_of = side.get("map_of") if isinstance(side.get("map_of"), dict) else {}
+    map_of = side.get("map_of") if isinstance(side.get("map_of"), dict) else None
+    has_map_of = map_of is not None
+    map_of = map_of or {}
     tile = map_of.get("tile")
     material = map_of.get("material")
     uv_set = int(map_of.get("uv_set") or 0)
@@ -223,7 +226,8 @@ def _entry(image_path: Path, label: str, pixels: np.ndarray, side: dict, enc: di
                      offset=[offset] * channels, scale=[scale] * channels, kind=kind, measure=measure,
                      sigma_per_unit=sigma, uv_set=uv_set, material=material,
                      tile=None if tile is None else int(tile), show_range=(0.0, 1.0),
-                     units=str(side.get("units") or ("scene units" if kind == "thickness" else "unitless")))
+                     units=str(side.get("units") or ("scene units" if kind == "thickness" else "unitless")),
+                     map_of_given=has_map_of)
     entry.show_range = _show_range(entry)
     return entry
 
@@ -239,42 +243,27 @@ def _show_range(entry: MapEntry) -> tuple[float, float]:
     return (0.0, top if top > 0 else 1.0)
 
 
-def entry_faces(asset, entry: MapEntry) -> np.ndarray:
+def entry_faces(asset, entry: MapEntry, map_of_given: bool = True) -> np.ndarray:
     """(k,) int64 indices of the asset's faces this entry's map covers.
 
-    A sidecar without ``map_of`` covers every face with UVs (the one-map-per-asset bake).  Otherwise
-    the faces of the named material whose UV centroid on the named UV set lies in the named tile.
+    The faces are split exactly as the bake split them (:func:`thickbake.pipeline.groups.map_groups`:
+    by material and by the UDIM tile of the UV centroid) and the group whose (material, tile) the
+    sidecar's ``map_of`` names is taken.  A sidecar without ``map_of`` (a map of the whole asset)
+    covers every face with UVs on UV set 0.
     """
-    triangle_uv, has_uv = _uv_set(asset, entry.uv_set)
-    keep = has_uv.copy()
-    if entry.tile is not None:
-        cell = np.floor(triangle_uv.mean(axis=1)).astype(np.int64)
-        keep &= (cell[:, 0] == entry.tile_offset[0]) & (cell[:, 1] == entry.tile_offset[1])
-    if entry.material is not None:
-        names = _material_keys(asset)
-        if names is not None:
-            keep &= names == str(entry.material)
-    return np.flatnonzero(keep).astype(np.int64)
+    from thickbake.pipeline.groups import map_groups
 
-
-def _uv_set(asset, uv_set: int) -> tuple[np.ndarray, np.ndarray]:
-    if hasattr(asset, "uv_set"):
-        return asset.uv_set(uv_set)
-    if uv_set != 0:
-        raise ThickbakeError(f"the map was baked on UV set {uv_set}, and this thickbake reads only the first",
-                             path=asset.path or asset.name, fix="give a map of UV set 0")
-    return asset.triangle_uv, asset.has_uv
-
-
-def _material_keys(asset) -> np.ndarray | None:
-    """(f,) str key of each face's material (as a sidecar's map_of names it), or None if unknown."""
-    face_material = getattr(asset, "face_material", None)
-    materials = getattr(asset, "materials", None)
-    if face_material is None or not materials:
-        return None
-    keys = np.array([str(getattr(m, "key", getattr(m, "name", i))) for i, m in enumerate(materials)] + ["None"])
-    index = np.where((face_material >= 0) & (face_material < len(materials)), face_material, len(materials))
-    return keys[index]
+    if not map_of_given:
+        triangle_uv, has_uv = asset.uv_set(0) if hasattr(asset, "uv_set") else (asset.triangle_uv, asset.has_uv)
+        return np.flatnonzero(has_uv).astype(np.int64)
+    groups, _ = map_groups(asset, entry.uv_set)
+    for group in groups:
+        key = group.key
+        same_material = (key.material is None and entry.material is None) or \
+            (entry.material is not None and str(key.material) == str(entry.material))
+        if same_material and key.tile == entry.tile:
+            return np.flatnonzero(group.faces).astype(np.int64)
+    return np.zeros(0, np.int64)
 
 
 __all__ = ["MapEntry", "entries_of", "entry_faces", "resolve_map_argument", "MAP_SUFFIXES"]
