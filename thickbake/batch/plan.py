@@ -157,6 +157,7 @@ class AssetJob:
     attempts: int = 0
     solo: bool = False
     maps: list = field(default_factory=list)
+    transfer: dict = field(default_factory=dict)
 
     @property
     def sidecar_rel(self) -> str:
@@ -265,13 +266,35 @@ def plan_batch(src, out, config=None, force: bool = False) -> BatchPlan:
     for rel in rels:
         options = rules.options_for(rel)
         settings, _ = settings_from_mapping(options.settings)
+        transfer = options.transfer_inputs(rel)
         jobs.append(AssetJob(rel=rel, source=src_abs / rel, map_rel=map_name(rel, options.format, settings.measure),
-                             options=options,
-                             requested_hash=settings.content_hash(), cost=_bake_cost(settings)))
+                             options=options, requested_hash=_requested_hash(settings, transfer),
+                             cost=_bake_cost(settings), transfer=transfer))
+    # a mesh that an asset measures in (its source or cage) is an input, not an asset of its own
+    inputs = {p for job in jobs for p in job.transfer.get("source", []) + [job.transfer.get("cage")] if p}
+    jobs = [job for job in jobs if job.rel not in inputs]
     plan = BatchPlan(src=src_abs, out=out.resolve(), rules=rules, jobs=jobs, unused_rules=rules.unused_rules(rels))
     _mark_name_clashes(plan.jobs)
     _mark_up_to_date(plan, force)
     return plan
+
+
+def _requested_hash(settings: BakeSettings, transfer: dict) -> str:
+    """The settings hash, joined with the transfer's inputs (source and cage names, search distance)."""
+    if not transfer:
+        return settings.content_hash()
+    blob = json.dumps({"settings": settings.content_hash(), "transfer": transfer}, sort_keys=True)
+    return hashlib.sha256(blob.encode()).hexdigest()
+
+
+def _transfer_digest(src: Path, inputs_sha256: str, transfer: dict) -> str:
+    """``inputs_sha256`` of an asset folded with the bytes of its source and cage files."""
+    digest = hashlib.sha256(inputs_sha256.encode())
+    for rel in transfer["source"] + ([transfer["cage"]] if transfer.get("cage") else []):
+        path = src / rel
+        digest.update(rel.encode())
+        digest.update(input_digests(path)[1].encode() if path.is_file() else b"missing")
+    return digest.hexdigest()
 
 
 def _bake_cost(settings: BakeSettings) -> float:
@@ -299,6 +322,8 @@ def _mark_up_to_date(plan: BatchPlan, force: bool) -> None:
             continue
         try:
             job.input_sha256, job.inputs_sha256 = input_digests(job.source)
+            if job.transfer:
+                job.inputs_sha256 = _transfer_digest(plan.src, job.inputs_sha256, job.transfer)
         except OSError as exc:
             job.status = "failed"
             job.error = f"{job.source}: cannot read the file ({exc.strerror or exc}); check its permissions"
@@ -599,6 +624,9 @@ def _task(plan: BatchPlan, job: AssetJob, threads: int | None) -> dict:
         "format": job.options.format,
         "settings": dict(job.options.settings),
         "threads": threads,
+        "transfer": {"source": [str(plan.src / p) for p in job.transfer["source"]],
+                     "cage": str(plan.src / job.transfer["cage"]) if job.transfer.get("cage") else None,
+                     "search_distance": job.transfer.get("search_distance")} if job.transfer else {},
         "batch": {"source": job.rel, "requested_settings_hash": job.requested_hash,
                   "inputs_sha256": job.inputs_sha256, "rules": list(job.options.rules)},
     }
@@ -710,6 +738,10 @@ def format_plan(plan: BatchPlan) -> list[str]:
         shown = " ".join(f"{k}={_setting_text(k, v)}" for k, v in settings.items())
         rules = ", ".join(f"#{n}" for n in job.options.rules) or "none"
         lines.append(f"    format={job.options.format} {shown}  [rules: {rules}]")
+        if job.transfer:
+            how = (f"cage {job.transfer['cage']}" if job.transfer.get("cage") else
+                   f"search distance {job.transfer['search_distance'] or 'default'}")
+            lines.append(f"    measured in {', '.join(job.transfer['source'])} ({how})")
     to_bake = len(plan.to_bake())
     skipped = sum(1 for j in plan.jobs if j.status == "skipped")
     failed = sum(1 for j in plan.jobs if j.status == "failed")

@@ -15,7 +15,19 @@ A rules file (``SRC/thickbake.toml`` by default) looks like this::
     match = ["**/*_lod1.glb", "props/small/*"]   # several globs: any one may match
     rays = 16
 
-Every key other than ``match`` and ``format`` is a :class:`~thickbake.settings.BakeSettings` field
+A rule can also measure an asset in another mesh (a transfer bake, :mod:`thickbake.pipeline.transfer`)::
+
+    [[rule]]
+    match = "characters/*_low.obj"
+    source = "{base}_high.obj"      # beside the asset; "{stem}" is the file name without its suffix,
+                                    # "{base}" the stem without its last _part ("bust_low" -> "bust"),
+                                    # "{suffix}" the suffix with its dot; a list names several sources
+    search_distance = 0.02          # or: cage = "{base}_cage.obj"
+
+Source and cage names are paths relative to the asset's folder (``../sculpts/{base}.obj`` works).  A
+mesh that some asset names as its source or cage is an input, not an asset: it is not baked itself.
+
+Every key other than ``match``, ``format``, ``source``, ``cage`` and ``search_distance`` is a :class:`~thickbake.settings.BakeSettings` field
 (``size``, ``rays``, ``cone``, ``lobe``, ``measure``, ``reach``, ...) or a
 :class:`~thickbake.settings.RunOptions` field (``threads``, ``chunk_rays``, ``order``), validated
 exactly as the API and the command line validate them.  Globs are matched against the whole relative path, case-sensitively:
@@ -32,7 +44,8 @@ from __future__ import annotations
 import difflib
 import os
 import re
-from dataclasses import dataclass
+import posixpath
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from thickbake.errors import ThickbakeError
@@ -44,6 +57,10 @@ DEFAULT_RULES_NAME = "thickbake.toml"
 FORMATS = {"png": ".png", "tif": ".tif"}
 #: Keys of the rules file that are not bake settings.
 OUTPUT_KEYS = ("format",)
+#: Keys that make an asset's bake a transfer from another mesh (names relative to the asset's folder).
+TRANSFER_KEYS = ("source", "cage", "search_distance")
+#: Placeholders a source or cage name may use.
+NAME_FIELDS = ("stem", "base", "suffix")
 #: Bake settings and run options (threads, chunk_rays, order) a table may set.
 SETTING_KEYS = OPTION_KEYS
 TOP_LEVEL_KEYS = ("defaults", "rule")
@@ -96,6 +113,19 @@ class AssetOptions:
     settings: dict
     format: str
     rules: tuple[int, ...]
+    transfer: dict = field(default_factory=dict)
+
+    def transfer_inputs(self, rel_path: str) -> dict:
+        """The transfer of the asset at ``rel_path``: ``source`` (list) and ``cage`` as paths relative to
+        the source folder (POSIX), and ``search_distance``; empty when the asset is measured in itself."""
+        if not self.transfer.get("source"):
+            return {}
+        sources = self.transfer["source"]
+        sources = [sources] if isinstance(sources, str) else list(sources)
+        cage = self.transfer.get("cage")
+        return {"source": [expand_name(p, rel_path) for p in sources],
+                "cage": expand_name(cage, rel_path) if cage else None,
+                "search_distance": self.transfer.get("search_distance")}
 
 
 @dataclass(frozen=True)
@@ -116,13 +146,21 @@ class RulesFile:
                 merged.update(rule.options)
                 used.append(rule.number)
         fmt = merged.pop("format", "png")
+        transfer = {k: merged.pop(k) for k in TRANSFER_KEYS if k in merged}
+        tables = "[defaults]" + "".join(f", rule #{n}" for n in used)
         try:
             settings_from_mapping(merged, where=self._where())
         except ThickbakeError as exc:
-            tables = "[defaults]" + "".join(f", rule #{n}" for n in used)
             raise ThickbakeError(f"settings for {rel_path} (from {tables}): {exc.message}",
                                  path=self.path, fix=exc.fix) from None
-        return AssetOptions(settings=merged, format=fmt, rules=tuple(used))
+        if transfer and not transfer.get("source"):
+            raise ThickbakeError(f"settings for {rel_path} (from {tables}): {' and '.join(sorted(transfer))} "
+                                 "without a source", path=self.path, fix='add source = "{base}_high.obj" (or the name '
+                                 'of the mesh to measure in)')
+        if "cage" in transfer and "search_distance" in transfer:
+            raise ThickbakeError(f"settings for {rel_path} (from {tables}): both cage and search_distance",
+                                 path=self.path, fix="keep one: the cage sets the search distance at every point")
+        return AssetOptions(settings=merged, format=fmt, rules=tuple(used), transfer=transfer)
 
     def unused_rules(self, rel_paths) -> list[Rule]:
         """Rules that match none of ``rel_paths`` (usually a typo in ``match``)."""
@@ -202,6 +240,46 @@ def load_rules(path: str | os.PathLike | None) -> RulesFile:
     return RulesFile(path=path, defaults=defaults, rules=tuple(rules), text=text)
 
 
+def expand_name(pattern: str, rel_path: str) -> str:
+    """A source or cage name for the asset at ``rel_path``, relative to the source folder (POSIX).
+
+    >>> expand_name("{base}_high{suffix}", "people/bust_low.obj")
+    'people/bust_high.obj'
+    >>> expand_name("../sculpts/{stem}.ply", "props/cup.glb")
+    'sculpts/cup.ply'
+    """
+    path = posixpath.basename(rel_path)
+    stem, suffix = posixpath.splitext(path)
+    base = stem.rsplit("_", 1)[0] if "_" in stem else stem
+    name = pattern.format(stem=stem, base=base, suffix=suffix)
+    return posixpath.normpath(posixpath.join(posixpath.dirname(rel_path), name))
+
+
+def _check_name(value) -> str | None:
+    """Why a source/cage name pattern is not allowed, or None."""
+    if not isinstance(value, str) or not value:
+        return "give a file name such as \"{base}_high.obj\""
+    if "\\" in value or value.startswith("/") or re.match(r"^[A-Za-z]:", value):
+        return "give a name relative to the asset's folder, with '/' between folders"
+    try:
+        value.format(**dict.fromkeys(NAME_FIELDS, "x"))
+    except (KeyError, IndexError, ValueError):
+        return "placeholders are {stem}, {base} and {suffix} (write {{ and }} for braces)"
+    return None
+
+
+def _check_transfer_value(key: str, value) -> str | None:
+    """Why a transfer key's value is not allowed, or None."""
+    if key == "search_distance":
+        ok = not isinstance(value, bool) and isinstance(value, (int, float)) and 0 < value < float("inf")
+        return None if ok else "give a positive distance in scene units"
+    if key == "source" and isinstance(value, list):
+        if not value:
+            return "name at least one source mesh"
+        return next((why for why in map(_check_name, value) if why), None)
+    return _check_name(value)
+
+
 def glob_regex(pattern: str) -> re.Pattern:
     """Compile a glob over relative POSIX paths (see the module docstring for its semantics).
 
@@ -272,7 +350,7 @@ def _parse_toml(text: str, path: Path) -> dict:
 
 def _check_table(table: dict, path: Path, lines: "_KeyLines", section, where: str, allow_match: bool) -> None:
     """Unknown keys, then each value on its own, so an error names its key and line."""
-    allowed = SETTING_KEYS + OUTPUT_KEYS + (("match",) if allow_match else ())
+    allowed = SETTING_KEYS + OUTPUT_KEYS + TRANSFER_KEYS + (("match",) if allow_match else ())
     for key in table:
         if key not in allowed:
             extra = ""
@@ -282,7 +360,11 @@ def _check_table(table: dict, path: Path, lines: "_KeyLines", section, where: st
                              f"allowed keys: {', '.join(allowed)}", extra=extra)
     for key, value in table.items():
         line = lines.find(section, key)
-        if key == "format":
+        if key in TRANSFER_KEYS:
+            why = _check_transfer_value(key, value)
+            if why:
+                raise ThickbakeError(f"{_at(line)}{where}: {key} = {value!r} is not allowed", path=path, fix=why)
+        elif key == "format":
             if value not in FORMATS:
                 raise ThickbakeError(f"{_at(line)}{where}: format = {value!r} is not allowed", path=path,
                                      fix=f"use {' or '.join(repr(f) for f in FORMATS)}")
@@ -299,7 +381,7 @@ def _check_table(table: dict, path: Path, lines: "_KeyLines", section, where: st
 
 
 def _key_error(path, line, where: str, key: str, allowed: str, extra: str = "") -> ThickbakeError:
-    known = SETTING_KEYS + OUTPUT_KEYS + ("match",) + TOP_LEVEL_KEYS
+    known = SETTING_KEYS + OUTPUT_KEYS + TRANSFER_KEYS + ("match",) + TOP_LEVEL_KEYS
     close = difflib.get_close_matches(key.replace("-", "_"), known, n=1)
     hint = f"did you mean {close[0]!r}? " if close and close[0] != key else ""
     return ThickbakeError(f"{_at(line)}unknown key {key!r} {where}{extra}", path=path, fix=f"{hint}{allowed}")
@@ -351,5 +433,5 @@ class _KeyLines:
         return self.headers.get(rule_number)
 
 
-__all__ = ["RulesFile", "Rule", "AssetOptions", "load_rules", "find_rules_file", "glob_regex",
+__all__ = ["RulesFile", "Rule", "AssetOptions", "load_rules", "find_rules_file", "glob_regex", "expand_name",
            "DEFAULT_RULES_NAME", "FORMATS"]

@@ -49,7 +49,9 @@ def bake_asset(task: dict) -> dict:
         ``source`` (absolute mesh path), ``map_name`` (file name of the map when the asset makes
         one; several maps get the names of :mod:`thickbake.maps.naming` in the same folder),
         ``format`` (``"png"`` or ``"tif"``), ``settings`` (BakeSettings and RunOptions fields as given),
-        ``threads`` (int or None: all cores of this machine over the tasks it runs at once) and
+        ``threads`` (int or None: all cores of this machine over the tasks it runs at once),
+        ``transfer`` (optional: ``source`` list of absolute paths, ``cage``, ``search_distance``, the
+        keyword arguments of a transfer bake) and
         ``batch`` (dict recorded in the sidecar under ``"batch"``).
 
     Returns
@@ -95,7 +97,9 @@ def _bake_asset(task: dict) -> dict:
     if run.threads is None:
         run = run.replace(threads=task.get("threads") or _threads_here())
     asset = load_asset(task["source"])
-    results = bake_maps(asset, settings, run)
+    results = bake_maps(asset, settings, run, **(task.get("transfer") or {}))
+    # in a transfer the target is not traced: its holes and winding do not matter, its UVs do
+    target_warnings = [w for w in asset.report.warnings if not task.get("transfer") or "UV" in w]
     suffix = FORMATS[task["format"]]
     assert Path(task["map_name"]).suffix.lower() == suffix
     keys = [dict(r.key.to_dict(), material_index=r.key.material_index) for r in results]
@@ -110,7 +114,7 @@ def _bake_asset(task: dict) -> dict:
         maps.append({"name": name, "map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
                      "warnings": list(result.info["warnings"])})
     return {"maps": maps, "threads": run.threads,
-            "warnings": list(asset.report.warnings) + [w for m in maps for w in m["warnings"]]}
+            "warnings": target_warnings + [w for m in maps for w in m["warnings"]]}
 
 
 def _threads_here() -> int:

@@ -5,12 +5,12 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from thickbake.cli.options import add_bake_options, settings_from_args
+from thickbake.cli.options import add_bake_options, add_transfer_options, settings_from_args, transfer_from_args
 from thickbake.cli.output import EXIT_FAILED, EXIT_OK, echo, print_warnings, strict_failure, verbose_lines
 
 EXAMPLES = """examples:
   thickbake bake samples/candle.glb                       writes samples/candle.thickness.png + .json
-  thickbake bake leaf.obj -o maps/leaf.exr --size 2048 --rays 128
+  thickbake bake bust_low.obj --from bust_high.obj -o maps/bust.exr --size 2048   (measured in the sculpt)
   thickbake bake candle.glb --reach fit --medium marble -o candle.rgb.png --write-gltf candle.volume.glb
   thickbake bake car.glb -o maps/ --blockers own --strict    one map per material: maps/car.body.thickness.png ..."""
 
@@ -56,6 +56,7 @@ def add_parser(sub, common) -> None:
     d.add_argument("--exr-type", choices=("float", "half"), default="float",
                    help="sample type of an .exr output (default float)")
     add_bake_options(p)
+    add_transfer_options(p, mask=True)
     p.set_defaults(func=run)
 
 
@@ -77,19 +78,25 @@ def run(args) -> int:
     if args.mesh is None:
         raise ThickbakeError("no mesh given", fix="thickbake bake MESH [options]; see 'thickbake bake --help'")
     settings, run_options = settings_from_args(args)
+    transfer = transfer_from_args(args)
     channels = _channel_plan(args, settings)
     if args.gltf_transmission is not None and not args.write_gltf:
         raise ThickbakeError("--gltf-transmission goes with --write-gltf", fix="give --write-gltf OUT.glb as well")
-    if args.error_out and args.output is None and args.pack_into:
-        raise ThickbakeError("--error-out goes with a map output", fix="give -o OUT as well")
+    for flag, given in (("--error-out", args.error_out), ("--unprojected-mask", args.unprojected_mask)):
+        if given and args.output is None and args.pack_into:
+            raise ThickbakeError(f"{flag} goes with a map output", fix="give -o OUT as well")
     asset = load_asset(args.mesh)
     groups, _ = map_groups(asset, settings.uv_set)
     keys = [dict(g.key.to_dict(), material_index=g.key.material_index) for g in groups]
     outputs = None if (args.output is None and args.pack_into) else \
         output_paths(args.output, args.mesh, settings.measure, keys)
     errors = output_paths(args.error_out, args.mesh, settings.measure, keys) if args.error_out else [None] * len(keys)
-    for out, err in zip(outputs or [], errors):
+    masks = (output_paths(args.unprojected_mask, args.mesh, "unprojected", keys) if args.unprojected_mask
+             else [None] * len(keys))
+    for out, err, mask in zip(outputs or [], errors, masks):
         check_output_path(out, err)
+        if mask is not None:
+            _check_mask_path(mask, out, err)
         if settings.medium and out.suffix.lower() in (".tif", ".tiff"):
             raise ThickbakeError("an RGB transmittance map cannot be a float TIFF", path=out,
                                  fix="name it .png or .exr")
@@ -109,15 +116,20 @@ def run(args) -> int:
         from thickbake.maps.packing import load_target
 
         load_target(args.pack_into, settings.bits)  # an unreadable target is refused before baking
-    warned = list(asset.report.warnings)
-    print_warnings(asset.report.warnings, args.mesh)
+    # in a transfer the target is not traced: its holes and winding do not matter, its UVs do
+    warned = [w for w in asset.report.warnings if not transfer or "UV" in w]
+    print_warnings(warned, args.mesh)
+    if transfer:
+        from thickbake.pipeline.transfer import load_source
+
+        transfer["source"] = load_source(transfer["source"])  # once, for every measure baked
     baked = {}
     for measure in dict.fromkeys([settings.measure] + [m for _, m in channels]):
         bar = ProgressBar(f"baking {os.path.basename(args.mesh)}" + (f" ({measure})" if len(channels) > 1 else ""),
                           enabled=False if args.quiet else None)
         try:
             baked[measure] = bake_maps(asset, settings if measure == settings.measure else settings.replace(measure=measure),
-                                       run_options, progress=bar)
+                                       run_options, progress=bar, **transfer)
         finally:
             bar.close()
     results = baked[settings.measure]
@@ -138,7 +150,7 @@ def run(args) -> int:
         written[0].append(args.pack_into)
     for i, result in enumerate(results):
         if outputs is not None:
-            result.write(outputs[i], error_out=errors[i], exr_type=args.exr_type)
+            result.write(outputs[i], error_out=errors[i], exr_type=args.exr_type, unprojected_out=masks[i])
             written[i].insert(0, outputs[i])
     for i, result in enumerate(results):
         where = args.mesh if len(results) == 1 else f"{args.mesh} ({_key_label(result)})"
@@ -163,6 +175,20 @@ def _key_label(result) -> str:
     key = result.key
     return " ".join(x for x in (f"material {key.material_label}", f"UV set {key.uv_set}" if key.uv_set else "",
                                 f"tile {key.tile}" if key.tile is not None else "") if x)
+
+
+def _check_mask_path(mask, output, error_out) -> None:
+    """The unprojected-texel mask is a PNG of its own, not one of the other outputs or a folder."""
+    from thickbake.errors import ThickbakeError
+
+    mask = Path(mask)
+    if mask.suffix.lower() != ".png":
+        raise ThickbakeError("the unprojected-texel mask is an 8-bit PNG", path=mask, fix="name it .png")
+    if mask.resolve() in {Path(p).resolve() for p in (output, error_out) if p is not None}:
+        raise ThickbakeError("the unprojected-texel mask would overwrite another output", path=mask,
+                             fix="give it its own name")
+    if mask.is_dir():
+        raise ThickbakeError("the unprojected-texel mask would overwrite a folder", path=mask, fix="give a file name")
 
 
 def _channel_plan(args, settings) -> list[tuple[str, str]]:
@@ -237,6 +263,11 @@ def summary_line(result, source: str, out: str) -> str:
         extra += f", {info['overlap']:.1%} of texels on overlapping UVs"
     if info.get("escape_fraction", 0) > 0:
         extra += f", {info['escape_fraction']:.2%} of rays escaped"
+    if "transfer" in info:
+        t = info["transfer"]
+        extra += f", measured in {', '.join(part['file'] for part in t['sources'])}"
+        if t["unprojected_texels"]:
+            extra += f", {t['unprojected_share']:.2%} of texels found no source point"
     return (f"{source} -> {out}: {w}x{h}, {int(result.covered.sum()):,} texels ({info['coverage']:.1%} covered{extra}), "
             f"{info['rays_traced']:,} rays at {info['rays_per_second'] / 1e6:.2f}M rays/s in {info['seconds']:.1f} s; "
             f"{info['measure']} min {st['min']:.4g} mean {st['mean']:.4g} max {st['max']:.4g}{units}")

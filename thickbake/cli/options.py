@@ -103,6 +103,44 @@ def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024"
                    help="tuning: texel order within a work item, Z order (default) or rows; no effect on the map")
 
 
+def add_transfer_options(parser: argparse.ArgumentParser, mask: bool = False) -> None:
+    """``--from SOURCE...``, ``--cage-mesh``, ``--search-distance`` (and ``--unprojected-mask`` for bake)."""
+    g = parser.add_argument_group("measuring in a source solid (the map goes to MESH's UVs)")
+    g.add_argument("--from", dest="source", nargs="+", metavar="SOURCE",
+                   help="measure the thickness in these solids (e.g. the detailed sculpt or a closed proxy; "
+                        "no UVs needed) instead of in MESH; put MESH before --from")
+    g.add_argument("--search-distance", type=float, metavar="D",
+                   help="how far from MESH's surface, outwards and inwards along its normal, to look for the "
+                        "source (default 5%% of MESH's bounding-box diagonal)")
+    g.add_argument("--cage-mesh", metavar="CAGE",
+                   help="search from this mesh's matching point through MESH's instead (same triangles as MESH, "
+                        "usually MESH pushed outwards)")
+    if mask:
+        g.add_argument("--unprojected-mask", metavar="FILE.png",
+                       help="also write an 8-bit mask, white on texels that found no source point")
+
+
+def transfer_from_args(args: argparse.Namespace) -> dict:
+    """Keyword arguments of :func:`thickbake.pipeline.driver.bake` for a transfer (empty without --from)."""
+    source = getattr(args, "source", None)
+    cage = getattr(args, "cage_mesh", None)
+    distance = getattr(args, "search_distance", None)
+    if not source:
+        given = [flag for flag, value in (("--cage-mesh", cage), ("--search-distance", distance),
+                                          ("--unprojected-mask", getattr(args, "unprojected_mask", None)))
+                 if value is not None]
+        if given:
+            verb = "needs" if len(given) == 1 else "need"
+            raise ThickbakeError(f"{' and '.join(given)} {verb} a source solid", fix="add --from SOURCE")
+        return {}
+    if cage is not None and distance is not None:
+        raise ThickbakeError("--cage-mesh and --search-distance were both given",
+                             fix="give one: the cage sets the search distance at every point")
+    if distance is not None and not distance > 0:
+        raise ThickbakeError(f"--search-distance {distance:g} is not allowed", fix="give a positive distance in scene units")
+    return {"source": list(source), "cage": cage, "search_distance": distance}
+
+
 def bake_options_from_args(args: argparse.Namespace) -> dict:
     """The bake options the user gave, as a flat dict of BakeSettings and RunOptions fields."""
     return {name: getattr(args, name) for name in BAKE_OPTION_NAMES if getattr(args, name, None) is not None}

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from thickbake.cli.options import add_bake_options, bake_options_from_args
+from thickbake.cli.options import add_bake_options, add_transfer_options, bake_options_from_args, transfer_from_args
 from thickbake.cli.output import EXIT_FAILED, EXIT_OK, echo, verbose_lines, write_json
 from thickbake.errors import ThickbakeError
 
@@ -22,13 +22,16 @@ def add_parser(sub, common) -> None:
                                    "lobe and measure; the others along the normal with --cone 0) and with Cauchy's mean "
                                    "chord 4V/S (cone 90, cosine, thickness). With MESH: check the asset is fit for "
                                    "baking (closed, faces outward, no intersecting parts, UV coverage/overlap/density, "
-                                   "mean chord). Exit 1 if a check fails.",
+                                   "mean chord). With MESH --from SOURCE: check the pair for a transfer bake (source "
+                                   "closed, share of MESH's texels that find the source, projection distances, rays "
+                                   "escaping the source). Exit 1 if a check fails.",
                        epilog=EXAMPLES)
     p.add_argument("mesh", metavar="MESH", nargs="?",
                    help="your asset, to check its fitness for baking (omit to verify against the analytic shapes)")
     p.add_argument("--json", metavar="FILE", help="also write the table as JSON; '-' writes only the JSON, to stdout")
     p.add_argument("--shapes", metavar="NAMES", help="comma-separated subset of the analytic shapes")
     add_bake_options(p, size_default="256", rays_default="64")
+    add_transfer_options(p)
     p.set_defaults(func=run)
 
 
@@ -39,11 +42,19 @@ def run(args) -> int:
     if json_path not in (None, "-") and Path(json_path).is_dir():
         raise ThickbakeError("the --json output is a folder", path=json_path, fix="give a file name such as verify.json")
     options = bake_options_from_args(args)
+    transfer = transfer_from_args(args)
+    if transfer and not args.mesh:
+        raise ThickbakeError("--from needs the target mesh", fix="thickbake verify TARGET --from SOURCE")
     if args.mesh:
         if args.shapes:
             raise ThickbakeError("--shapes applies to the analytic shapes, not to a mesh",
                                  fix="drop --shapes, or drop MESH to verify the analytic shapes")
-        report = verify_asset(args.mesh, options)
+        if transfer:
+            from thickbake.checks.transfer_fit import verify_transfer
+
+            report = verify_transfer(args.mesh, options=options, **transfer)
+        else:
+            report = verify_asset(args.mesh, options)
     else:
         report = verify_shapes(options, args.shapes)
     if json_path != "-" and not args.quiet:

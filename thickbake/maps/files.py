@@ -142,14 +142,19 @@ def json_bytes(data: dict) -> bytes:
 
 def write_map(path: str | os.PathLike, data: bytes, sidecar: dict,
               extra: dict[str, np.ndarray] | None = None) -> None:
-    """Write encoded map bytes, optional extra float maps (path → (h, w) float32 TIFF) and the sidecar.
+    """Write encoded map bytes, optional extra maps (path → (h, w) array: float32 TIFF, or a uint8 PNG
+    mask for a ``.png`` path) and the sidecar.
 
     Every file is encoded in memory first, then each is written atomically, the sidecar last.
     """
     path = Path(path)
     blobs = [(path, data)]
     for extra_path, array in (extra or {}).items():
-        blobs.append((Path(extra_path), image_bytes(array.astype(np.float32), ".tif")))
+        extra_path = Path(extra_path)
+        if extra_path.suffix.lower() == ".png":  # a mask: uint8 as given
+            blobs.append((extra_path, image_bytes(array, ".png")))
+        else:
+            blobs.append((extra_path, image_bytes(array.astype(np.float32), ".tif")))
     blobs.append((sidecar_path(path), json_bytes(sidecar)))
     written = []
     try:

@@ -18,6 +18,12 @@ texels), ``input`` {``file``, ``sha256``}, ``settings`` (map content), ``setting
   a bake with a ``medium`` stores RGB transmittance instead (see :func:`medium_encoding_entry`);
 * ``gltf_hint`` (uninverted thickness PNGs): how KHR_materials_volume uses the map;
 * ``error_map``: file name of the standard-error TIFF, when one was written;
+* ``transfer`` (bakes measured in a source solid, :mod:`thickbake.pipeline.transfer`): ``sources``
+  [{``file``, ``sha256``, ``watertight``, ...}], ``mode`` ("search distance" or "cage"),
+  ``search_distance`` (scene units) or ``cage`` {``file``, ``sha256``}, ``layout_texels``,
+  ``unprojected_texels``, ``unprojected_share``, ``unprojected_samples``, ``samples`` and
+  ``distance`` {``p50``, ``p95``, ``max``} (target-to-source distance, scene units);
+  ``unprojected_mask``: file name of the 8-bit mask of the unprojected texels, when one was written;
 * ``batch``: ``source``, ``requested_settings_hash``, ``inputs_sha256``, ``rules``, ``map_sha256``
   (what :mod:`thickbake.batch.plan` needs to tell whether the map is up to date).
 """
@@ -140,6 +146,11 @@ def gltf_hint(reach: float, local_units: dict | None) -> dict:
 def with_error_map(sidecar: dict, error_map: str | os.PathLike) -> dict:
     """The sidecar naming the standard-error TIFF written beside the map."""
     return {**sidecar, "error_map": Path(error_map).name}
+
+
+def with_unprojected_mask(sidecar: dict, mask: str | os.PathLike) -> dict:
+    """The sidecar naming the 8-bit mask of a transfer bake's unprojected texels, written beside the map."""
+    return {**sidecar, "unprojected_mask": Path(mask).name}
 
 
 def with_batch_record(sidecar: dict, record: dict, map_bytes: bytes) -> dict:

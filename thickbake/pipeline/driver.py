@@ -30,12 +30,13 @@ from thickbake.pipeline.load import Asset, load_asset
 from thickbake.pipeline.finish import fit_reach, medium_record, medium_scale
 from thickbake.maps.files import check_output_path, write_map
 from thickbake.maps.padding import pad_map
-from thickbake.maps.sidecar import build_sidecar, with_error_map
+from thickbake.maps.sidecar import build_sidecar, with_error_map, with_unprojected_mask
 from thickbake.pipeline.trace import RayEngine
 from thickbake.settings import BakeSettings, RunOptions, check_memory, split_options
 from thickbake.pipeline.blockers import build_engines
 from thickbake.pipeline.groups import MapGroup, MapKey, local_units, map_groups
 from thickbake.pipeline.origins import inward_origins
+from thickbake.pipeline.transfer import Transfer
 from thickbake.pipeline.texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
 
 #: First batch of rays per sample in adaptive mode; later batches double the count, so every sample
@@ -72,6 +73,9 @@ class BakeResult:
         How it ran (threads filled in).
     key : MapKey or None
         Which (material, UV set, UDIM tile) of the asset the map holds.
+    unprojected : (h, w) bool or None
+        Bakes from a source solid only: texels of the map's UV layout none of whose samples found a
+        source point within the search distance or the cage (left to padding, never given a value).
     """
 
     values: np.ndarray
@@ -83,6 +87,7 @@ class BakeResult:
     info: dict = field(default_factory=dict)
     run: RunOptions = field(default_factory=RunOptions)
     key: MapKey | None = None
+    unprojected: np.ndarray | None = None
 
     @property
     def world_per_local(self) -> float | None:
@@ -157,17 +162,31 @@ class BakeResult:
         return image_bytes(image, suffix), sidecar
 
     def write(self, map_path: str | os.PathLike, error_out: str | os.PathLike | None = None,
-              exr_type: str = "float") -> Path:
-        """Write the map (PNG codes or float32 TIFF of the measure) and its sidecar, atomically."""
+              exr_type: str = "float", unprojected_out: str | os.PathLike | None = None) -> Path:
+        """Write the map (PNG codes or float32 TIFF of the measure) and its sidecar, atomically.
+
+        ``unprojected_out`` (bakes from a source solid) also writes :meth:`unprojected_mask` as an
+        8-bit PNG.
+        """
         path = check_output_path(map_path, error_out)
         extra = {}
         if error_out is not None:
             extra[Path(error_out)] = self.stderr
+        if unprojected_out is not None:
+            extra[Path(unprojected_out)] = self.unprojected_mask()
         data, sidecar = self.encode(path.name, exr_type=exr_type)
         if error_out is not None:
             sidecar = with_error_map(sidecar, error_out)
+        if unprojected_out is not None:
+            sidecar = with_unprojected_mask(sidecar, unprojected_out)
         write_map(path, data, sidecar, extra)
         return path
+
+    def unprojected_mask(self) -> np.ndarray:
+        """(h, w) uint8: 255 on texels of the UV layout that found no source point, else 0."""
+        if self.unprojected is None:
+            raise ValueError("only a bake from a source solid (source=...) has unprojected texels")
+        return np.where(self.unprojected, 255, 0).astype(np.uint8)
 
 
 @dataclass
@@ -191,16 +210,21 @@ class _Context:
     key: MapKey
     faces: np.ndarray
     escape_distance: float
+    transfer: Transfer | None = None
+    unprojected: np.ndarray | None = None
+    offset: np.ndarray | None = None
 
 
 #: Figures each tile reports, summed over the bake.
-_TALLY_KEYS = ("rays", "misses", "escapes", "overlapped", "samples", "rays_cap", "origins_moved", "origins_outside")
+_TALLY_KEYS = ("rays", "misses", "escapes", "overlapped", "samples", "rays_cap", "origins_moved", "origins_outside",
+               "unprojected_samples")
 
 
 def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = None, *,
          progress: Callable[[float, int], None] | None = None, engine: RayEngine | None = None,
-         **options) -> BakeResult:
-    """Bake a thickness-type map of a UV-mapped mesh whose faces make one map.
+         source=None, cage=None, search_distance: float | None = None, **options) -> BakeResult:
+    """Bake a thickness-type map of a UV-mapped mesh whose faces make one map, measured in the mesh
+    itself or in a source solid.
 
     An asset with several materials or UDIM tiles makes several maps: use :func:`bake_maps`.
 
@@ -215,7 +239,18 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
     progress : callable(fraction_done, rays_traced), optional
         Called from worker threads after each tile.
     engine : RayEngine, optional
-        A ray engine over the asset's trace mesh (see :mod:`thickbake.pipeline.trace`); built if omitted.
+        A ray engine over the traced mesh (see :mod:`thickbake.pipeline.trace`): the asset's, or the
+        source's in a bake from a source solid; built if omitted.
+    source : path, trimesh object, Asset, SourceSolid or list of paths/objects, optional
+        Measure in this solid (which needs no UVs) and write to ``mesh``'s UVs
+        (:mod:`thickbake.pipeline.transfer`).  Reach, bias and attenuation distance then default
+        relative to the source's bounding box, the solid measured; ``blockers`` does not apply.
+    cage : path, trimesh object or Asset, optional
+        With ``source``: a mesh with the target's triangles whose matching points set each sample's
+        search direction and distance.
+    search_distance : float, optional
+        With ``source`` and no cage: how far to search along the target's normal on either side, scene
+        units (default 5% of the target's bounding-box diagonal).
     **options
         Fields of either object (``size=512``, ``threads=2``), overriding ``settings`` and ``run``.
 
@@ -243,12 +278,13 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
         names = ", ".join(_key_text(g.key) for g in groups[:6]) + (" ..." if len(groups) > 6 else "")
         raise ThickbakeError(f"the asset makes {len(groups)} maps ({names}), not one", path=asset.path or asset.name,
                              fix="bake it with thickbake.bake_maps (the command line writes one file per map)")
-    return bake_maps(asset, settings, run, progress=progress, engine=engine)[0]
+    return bake_maps(asset, settings, run, progress=progress, engine=engine, source=source, cage=cage,
+                     search_distance=search_distance)[0]
 
 
 def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None = None, *,
               progress: Callable[[float, int], None] | None = None, engine: RayEngine | None = None,
-              **options) -> list[BakeResult]:
+              source=None, cage=None, search_distance: float | None = None, **options) -> list[BakeResult]:
     """Bake one map per (material, UV set, UDIM tile) of a UV-mapped mesh.
 
     Each map rasterises only its own faces (UVs shifted into its tile's unit square), so UV overlap
@@ -257,8 +293,8 @@ def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None
 
     Parameters
     ----------
-    mesh, settings, run, progress, engine, **options
-        As :func:`bake`; ``engine`` is used for ``blockers = "all"`` only.
+    mesh, settings, run, progress, engine, source, cage, search_distance, **options
+        As :func:`bake`; ``engine`` is used for ``blockers = "all"`` or over the source.
 
     Returns
     -------
@@ -278,12 +314,23 @@ def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None
     asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
     fit = settings.reach == "fit"
     mm_per_unit = medium_scale(settings, asset.path)  # a missing unit is refused before any tracing
-    s = settings.resolve(asset.diagonal)
+    transfer = None
+    if source is not None:
+        from thickbake.pipeline.transfer import prepare_transfer
+
+        transfer = prepare_transfer(asset, source, cage, search_distance, engine)
+    elif cage is not None or search_distance is not None:
+        raise ThickbakeError("a cage or a search distance needs a source solid to search for",
+                             fix="give the source mesh too (source=..., or --from SOURCE)")
+    s = settings.resolve(asset.diagonal if transfer is None else transfer.solid.diagonal)
     r = run.resolve()
     groups, group_warnings = map_groups(asset, s.uv_set)
     from thickbake.pipeline.trace import make_engine
 
-    engines, engine_of_face = build_engines(asset, s.blockers, make_engine, engine)
+    if transfer is None:
+        engines, engine_of_face = build_engines(asset, s.blockers, make_engine, engine)
+    else:  # every target face measures in the source
+        engines, engine_of_face = [transfer.engine], np.zeros(len(asset.trace_faces), np.int64)
     setup = time.perf_counter() - start
     weights = np.array([float(g.faces.sum()) for g in groups])
     weights = weights / weights.sum()
@@ -295,7 +342,7 @@ def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None
             if progress is not None:
                 progress(float(done_before[i] + weights[i] * fraction), traced_before[0] + rays)
         result = _bake_map(asset, s, r, group, engines, engine_of_face, map_progress, setup if i == 0 else 0.0,
-                           fit, mm_per_unit)
+                           fit, mm_per_unit, transfer)
         traced_before[0] += result.info["rays_traced"]
         if group_warnings:
             result.info["warnings"] = list(group_warnings) + result.info["warnings"]
@@ -309,16 +356,19 @@ def _key_text(key: MapKey) -> str:
 
 
 def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engines, engine_of_face, progress,
-              setup_seconds: float, fit: bool, mm_per_unit: float | None) -> BakeResult:
+              setup_seconds: float, fit: bool, mm_per_unit: float | None, transfer: Transfer | None = None) -> BakeResult:
     """Bake the map of one group of faces (all of the asset's engines shared); ``fit`` fits this
     map's own reach (so each map of an asset uses its full code range)."""
     start = time.perf_counter() - setup_seconds
-    ctx, tiles, starts, members = _prepare(asset, s, r, group, engines, engine_of_face)
+    ctx, tiles, starts, members = _prepare(asset, s, r, group, engines, engine_of_face, transfer)
     setup_seconds = time.perf_counter() - start
     totals = _run_tiles(ctx, tiles, starts, members, progress)
     trace_seconds = time.perf_counter() - start - setup_seconds
 
     covered = ctx.claims > 0
+    if not covered.any() and transfer is not None and ctx.unprojected.any():
+        raise ThickbakeError(f"no texel of the map ({_key_text(group.key)}) found a point of the source",
+                             path=asset.path, fix="check the source lines up with the target, or raise the search distance")
     if not covered.any():
         raise ThickbakeError(f"no texel of the map ({_key_text(group.key)}) is covered by the UV layout",
                              path=asset.path, fix="check the UVs lie inside the 0–1 square or in UDIM tiles")
@@ -331,7 +381,7 @@ def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, eng
     if mm_per_unit is not None:
         info["medium"] = medium_record(s, mm_per_unit)
     return BakeResult(values=ctx.values, covered=covered, stderr=ctx.stderr, area=ctx.area, rays=ctx.rays,
-                      settings=s, info=info, run=r, key=group.key)
+                      settings=s, info=info, run=r, key=group.key, unprojected=ctx.unprojected)
 
 
 def _with_options(settings: BakeSettings | None, run: RunOptions | None,
@@ -350,7 +400,8 @@ def _with_options(settings: BakeSettings | None, run: RunOptions | None,
     return settings, run
 
 
-def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engines, engine_of_face):
+def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engines, engine_of_face,
+             transfer: Transfer | None = None):
     """The shared context of one map and its tiles: (context, tiles, starts, members) of :func:`tile_buckets`."""
     width, height = s.size
     tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, group.triangle_uv, group.faces, width, height)
@@ -365,8 +416,13 @@ def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engi
         claims=np.zeros((height, width), np.uint16), key=group.key, faces=group.faces,
         # rays from inside a closed solid meet a wall within the bounding-box diagonal (plus the
         # start offset); one that travels further has left the mesh
-        escape_distance=asset.diagonal * (1.0 + ESCAPE_MARGIN) + 2.0 * s.bias,
+        escape_distance=(asset.diagonal if transfer is None else transfer.solid.diagonal) * (1.0 + ESCAPE_MARGIN)
+        + 2.0 * s.bias,
+        transfer=transfer,
     )
+    if transfer is not None:
+        ctx.unprojected = np.zeros((height, width), bool)
+        ctx.offset = np.zeros((height, width), np.float32)
     return ctx, tiles, starts, members
 
 
@@ -410,6 +466,10 @@ def _bake_info(ctx: _Context, covered: np.ndarray, totals: dict, seconds: float,
     warnings = bake_warnings(escape_fraction, totals["overlapped"] / n_covered, totals["origins_outside"])
     vals = ctx.values[covered].astype(np.float64)
     errs = ctx.stderr[covered].astype(np.float64)
+    extra = {}
+    if ctx.transfer is not None:
+        extra["transfer"] = _transfer_info(ctx, covered, totals)
+        warnings += transfer_warnings(extra["transfer"])
     return {
         "measure": s.measure,
         "units": measure_named(s.measure).units,
@@ -442,7 +502,39 @@ def _bake_info(ctx: _Context, covered: np.ndarray, totals: dict, seconds: float,
         "run": ctx.run.to_dict(),
         "timing": timing,
         "warnings": warnings,
+        **extra,
     }
+
+
+def _transfer_info(ctx: _Context, covered: np.ndarray, totals: dict) -> dict:
+    """The sidecar's ``transfer`` record: set-up, and how much of the target found the source."""
+    from thickbake.pipeline.transfer import distance_spread
+
+    lost = int(ctx.unprojected.sum())
+    layout = int(covered.sum()) + lost
+    info = ctx.transfer.describe()
+    info.update({
+        "layout_texels": layout,
+        "unprojected_texels": lost,
+        "unprojected_share": lost / max(layout, 1),
+        "unprojected_samples": int(totals["unprojected_samples"]),
+        "samples": int(totals["samples"] + totals["unprojected_samples"]),
+        "distance": distance_spread(ctx.offset[covered]),
+    })
+    return info
+
+
+def transfer_warnings(info: dict) -> list[str]:
+    """What a bake from a source solid warns about: unprojected texels, a source that is not closed."""
+    out = []
+    if info["unprojected_texels"]:
+        out.append(f"{info['unprojected_share']:.2%} of the target's texels found no point of the source "
+                   "(left to padding) - raise the search distance or use a cage")
+    for part in info["sources"]:
+        if not part["watertight"]:
+            out.append(f"the source {part['file']} is not closed ({part['boundary_edges']} open edges); "
+                       "rays escaping through its holes count as the full reach")
+    return out
 
 
 #: A ray still travelling after the bounding-box diagonal plus this share of it has left the mesh:
@@ -513,12 +605,24 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray)
         return tally
     if ctx.run.order == "morton":
         samples = samples.take(morton_order(samples.texel, width))
-    positions, normals = place_samples(asset.triangles, asset.triangle_normals, asset.face_normals, samples, s.bias)
+    if ctx.transfer is None:
+        positions, normals = place_samples(asset.triangles, asset.triangle_normals, asset.face_normals, samples,
+                                           s.bias)
+        traced_face_normals, sample_face = asset.face_normals, samples.face
+    else:  # measured in the source: the source's points, normals and faces stand in for the target's
+        positions, normals, sample_face, found, offset = ctx.transfer.match(asset, samples, s.bias)
+        traced_face_normals = ctx.transfer.solid.face_normals
+        tally["unprojected_samples"] = int(n - found.sum())
+        _record_projection(ctx, samples.texel, found, offset)
+        samples = samples.take(np.flatnonzero(found))
+        n = len(samples)
+        if n == 0:
+            return tally
     keys = sample_keys(samples.texel, samples.sub, samples.face)
     # Rays start behind the sample's own face plane, offset along the face normal: a shading normal
     # tilted far from its face (smoothed rims, bent file normals) would otherwise put the origin on
     # the wrong side of a neighbouring face.  The lobe stays about the shading normal.
-    face_normals = asset.face_normals[samples.face]
+    face_normals = traced_face_normals[sample_face]
     flat = ~(np.abs(face_normals).sum(axis=1) > 0)
     face_normals = np.where(flat[:, None], normals, face_normals)
     axis = (-normals).astype(np.float32)
@@ -528,7 +632,7 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray)
         engine = ctx.engines[int(which)]
         mine = np.flatnonzero(engine_of_sample == which)
         origins, sample_bias, unresolved = inward_origins(engine, positions[mine], face_normals[mine],
-                                                          asset.face_normals, s.bias)
+                                                          traced_face_normals, s.bias)
         tally["origins_moved"] += int((sample_bias < s.bias).sum())
         tally["origins_outside"] += unresolved
         inward = (-face_normals[mine]).astype(np.float32)
@@ -543,6 +647,17 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray)
     ctx.claims[rows, cols] = np.minimum(claims, 65535)
     tally.update(overlapped=overlapped, samples=n, rays_cap=n * ctx.rays_per_sample)
     return tally
+
+
+def _record_projection(ctx: _Context, texel: np.ndarray, found: np.ndarray, offset: np.ndarray) -> None:
+    """Mark the tile's texels none of whose samples found the source; store the mean projection distance."""
+    width = ctx.settings.width
+    lost = np.setdiff1d(texel[~found], texel[found])
+    ctx.unprojected[lost // width, lost % width] = True
+    texels, inverse = np.unique(texel[found], return_inverse=True)
+    if len(texels):
+        mean = np.bincount(inverse, weights=offset) / np.bincount(inverse)
+        ctx.offset[texels // width, texels % width] = mean
 
 
 def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np.ndarray, origins: np.ndarray,

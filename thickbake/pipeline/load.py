@@ -168,7 +168,7 @@ def file_sha256(path: str | os.PathLike) -> str:
     return digest.hexdigest()
 
 
-def load_asset(source, name: str | None = None) -> Asset:
+def load_asset(source, name: str | None = None, *, need_uv: bool = True) -> Asset:
     """Load a mesh file or a trimesh object into an :class:`Asset`.
 
     Parameters
@@ -179,6 +179,9 @@ def load_asset(source, name: str | None = None) -> Asset:
         formats and in-memory objects through trimesh (UV set 0, one material per geometry).
     name : str, optional
         Name used in messages; defaults to the file name.
+    need_uv : bool
+        False for a solid that is only traced (the source of a bake from a source solid, or a cage,
+        :mod:`thickbake.pipeline.transfer`): its UVs are then neither required nor checked.
 
     Raises
     ------
@@ -215,7 +218,7 @@ def load_asset(source, name: str | None = None) -> Asset:
     if not parts:
         raise ThickbakeError("the mesh is empty (no triangles)", path=path or name,
                              fix="export the asset with its geometry")
-    return _assemble(parts, read.materials, name=name, path=path, sha256=digest)
+    return _assemble(parts, read.materials, name=name, path=path, sha256=digest, need_uv=need_uv)
 
 
 # ---------------------------------------------------------------------------- flattening
@@ -292,7 +295,8 @@ def _part(geom, transform: np.ndarray, where: str, name: str, material: int) -> 
 
 
 # ---------------------------------------------------------------------------- assembly
-def _assemble(parts: list[Part], materials: list[Material], name: str, path: str | None, sha256: str | None) -> Asset:
+def _assemble(parts: list[Part], materials: list[Material], name: str, path: str | None, sha256: str | None,
+              need_uv: bool = True) -> Asset:
     where = path or name
     n_sets = max(len(p.uv_sets) for p in parts)
     triangles = np.concatenate([p.triangles for p in parts])
@@ -315,10 +319,13 @@ def _assemble(parts: list[Part], materials: list[Material], name: str, path: str
     # NaN and others finite is broken data.
     finite = [np.isfinite(uv).all(axis=(1, 2)) for uv in uv_sets]
     partial = [~f & np.isfinite(uv).any(axis=(1, 2)) for f, uv in zip(finite, uv_sets)]
+    if not need_uv:  # a traced-only solid: its UVs, if any, are never read
+        uv_sets = [np.full((len(triangles), 3, 2), np.nan)]
+        finite = partial = [np.zeros(len(triangles), bool)]
     if any(p.any() for p in partial):
         raise ThickbakeError("the mesh has UV coordinates that are NaN or infinite", path=where,
                              fix="repair the UV layout and export again")
-    if not any(f.any() for f in finite):
+    if need_uv and not any(f.any() for f in finite):
         raise ThickbakeError("the mesh has no UV coordinates", path=where,
                              fix="unwrap it (give it a UV layout) and export with texture coordinates")
     has_uv = finite[0]
