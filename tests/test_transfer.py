@@ -70,12 +70,14 @@ def normal_chord_band(source_shape) -> tuple[float, float]:
     The shading normal at a point p of a source facet is parallel to p itself (p = Σ bᵢvᵢ with radial
     vertex normals vᵢ/R), so the ray passes through the centre: chord = |p| + |exit point|, and both
     points lie between the spheres of radius R − δ and R, δ the facet bound of the tessellation
-    (thickbake.checks.shapes facet_error, 2R(1 − cos(π/segments))).  Hence 2R − 2δ ≤ chord ≤ 2R, plus
+    (thickbake.checks.shapes facet_error, 2R(1 − cos(π/segments))).  Hence 2R − 2δ ≤ chord ≤ 2R (R the
+    source's radius), plus
     float32 rounding of the origins; the bias is removed exactly along the normal (driver docstring).
     """
+    radius = source_shape.params["radius"]
     delta = source_shape.facet_error
     slack = f32_slack(2 * np.sqrt(3) * R)
-    return 2 * R - 2 * delta - slack, 2 * R + slack
+    return 2 * radius - 2 * delta - slack, 2 * radius + slack
 
 
 def test_transfer_reads_the_source_sphere_along_the_normal_and_a_self_bake_does_not(target, source):
@@ -195,6 +197,24 @@ def test_cage_pushed_outwards_gives_the_search_distance_map(target, source):
     assert np.array_equal(searched.covered, caged.covered)
     assert np.abs(searched.values - caged.values).max() <= np.spacing(np.float32(2 * R))
     assert searched.info["transfer"]["distance"]["max"] < distance * 0.5
+
+
+def test_cage_finds_a_source_inside_the_target(target):
+    # A source of radius 0.9R lies wholly inside the target (whose points are 0.934R–R from the centre,
+    # see the first test), so from the target point it is found only beyond it, away from the cage:
+    # the cage's search runs from the cage point through the target point and as far again beyond.
+    # Expected: 2 · 0.9R along the normal, within the inner sphere's normal_chord_band.
+    inner = shapes.sphere(radius=0.9 * R, segments=192)
+    asset = load_asset(target)
+    distance = SEARCH_DIAGONAL_FRACTION * asset.diagonal   # > the largest gap, 0.1R
+    cage_corners = asset.triangles + distance * asset.triangle_normals
+    cage = trimesh.Trimesh(cage_corners.reshape(-1, 3), np.arange(3 * len(cage_corners)).reshape(-1, 3),
+                           process=False)
+    result = thickbake.bake(asset, size=64, cone=0, source=inner.mesh, cage=cage)
+    assert result.info["transfer"]["unprojected_texels"] == 0
+    low, high = normal_chord_band(inner)
+    values = result.values[result.covered]
+    assert values.min() >= low and values.max() <= high
 
 
 def test_cage_must_share_the_targets_topology(target, source):
@@ -437,3 +457,22 @@ def test_batch_rules_refuse_bad_transfer_keys(tmp_path, table, message):
     (src / "thickbake.toml").write_text(f'[[rule]]\nmatch = "*"\n{table}\n')
     with pytest.raises(ThickbakeError, match=message):
         batch.plan_batch(src, tmp_path / "out")
+
+
+def test_every_material_map_of_the_target_measures_in_the_source(source):
+    # Two materials (two scene geometries: the icosphere's faces above and below z = 0, each face in its
+    # own UV cell) make two maps; each is measured in the source and reads 2R (normal_chord_band).
+    tri = icosphere_triangles()
+    upper = tri.mean(axis=1)[:, 2] > 0
+    scene = trimesh.Scene()
+    for name, keep in (("cap", upper), ("bowl", ~upper)):
+        part = per_face_target(tri, cells=9).submesh([np.flatnonzero(keep)], append=True)
+        part.visual.material = trimesh.visual.material.SimpleMaterial(name=name)
+        scene.add_geometry(part, geom_name=name)
+    maps = thickbake.bake_maps(scene, size=SIZE, cone=0, source=source.mesh)
+    assert len(maps) == 2
+    low, high = normal_chord_band(source)
+    for result in maps:
+        assert result.info["transfer"]["unprojected_texels"] == 0
+        values = result.values[result.covered]
+        assert result.covered.sum() > 1000 and values.min() >= low and values.max() <= high
