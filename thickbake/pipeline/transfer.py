@@ -331,7 +331,8 @@ def prepare_transfer(target: Asset, source, cage=None, search_distance: float | 
     search_distance : float, optional
         Scene units; default :data:`SEARCH_DIAGONAL_FRACTION` × the target's diagonal.
     engine : RayEngine, optional
-        Over the source; built if omitted.
+        Over the source's trace mesh moved into the target's frame (``SourceSolid.in_frame(target.centre)``;
+        the loader re-centres every mesh on its own bounding box); built if omitted.
     """
     if search_distance is not None:
         if isinstance(search_distance, bool) or not isinstance(search_distance, (int, float)) \
