@@ -300,3 +300,44 @@ def test_several_maps_per_asset_each_on_its_own_faces(tmp_path):
     ratio, rel = expected_ratio()
     assert n_thin > 100 and n_thick > 100
     assert abs(thin / thick / ratio - 1) < rel, (thin, thick, thin / thick, ratio, rel)
+
+
+def test_rgb_medium_map_glows_redder_through_the_thin_sphere(baked, tmp_path):
+    """A ``--medium`` bake stores RGB transmittance T_c = exp(−σ_tr,c · mm_per_unit · d) (σ_tr of the
+    Apple preset: Jensen, Marschner, Levoy & Hanrahan, SIGGRAPH 2001, read back from the sidecar, not
+    restated).  The page uses it as the transmission per channel, so per channel the thin disc's
+    brightness over the thick disc's is exp(σ_tr,c · mm_per_unit · (d_thick − d_thin)) — larger for
+    blue than for red — with the same error budget per channel (d errors scaled by σ instead of 1/A)."""
+    _chromium_or_skip()
+    import subprocess
+    import sys
+
+    from PIL import Image
+    from scipy import ndimage
+
+    asset, _ = baked
+    out = tmp_path / "apple.png"
+    proc = subprocess.run([sys.executable, "-m", "thickbake", "bake", str(asset), "-o", str(out), "--size", "128",
+                           "--rays", str(RAYS), "--reach", str(REACH), "--seed", "1", "--medium", "Apple",
+                           "--scene-unit", "1cm", "-q"], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    medium = json.loads(out.with_suffix(".json").read_text())["medium"]
+    sigma = np.asarray(medium["sigma_tr_per_mm"]) * medium["mm_per_unit"]  # per scene unit
+    _, still = render(asset, [out])
+    assert still.errors == []
+    rgb = np.asarray(Image.open(io.BytesIO(still.png)).convert("RGB"))
+    lit = rgb.max(axis=2) > 8
+    half = rgb.shape[1] // 2
+    medians = []
+    for side in (slice(0, half), slice(half, None)):
+        mask = ndimage.binary_erosion(lit[:, side], iterations=3)
+        medians.append(np.median(_linear(rgb[:, side][mask]), axis=0))
+    measured = medians[0] / medians[1]
+    d_thin, d_thick = 4 * R_THIN / 3, 4 * R_THICK / 3
+    expected = np.exp(sigma * (d_thick - d_thin))
+    mc = 3 * 1.25 * math.sqrt(2 - 16 / 9) / (4 / 3) / math.sqrt(RAYS * 100)
+    d_err = mc * d_thick + 2 * R_THICK * (1 - math.cos(math.pi / SEGMENTS)) + REACH / 65535
+    # 16-bit RGB codes of T add 1/65535 each; the 8-bit sRGB output 0.6 % per disc (see the module docstring)
+    rel = 2 * (d_err * sigma + 0.006) + 2 / 65535
+    assert measured[2] > measured[1] > measured[0] > 1
+    assert np.all(np.abs(measured / expected - 1) < rel), (measured, expected, rel)
