@@ -165,6 +165,18 @@ MUTATIONS = (
              ("tests/test_layers.py",),
              also=(("thickbake/maps/files.py", None,
                     "\n\ndef _mutant():\n    from thickbake.maps import padding\n    return padding\n"),)),
+    Mutation("preview-ignores-sidecar-decode",
+             "the viewer's shader reads the stored value as the thickness, without the sidecar's offset and scale",
+             "thickbake/preview/viewer.js",
+             "vec3 measure = uHasMap ? uOffset + uScale * storedValue() : vec3(0.0);",
+             "vec3 measure = uHasMap ? storedValue() : vec3(0.0);",
+             ("tests/test_preview.py::test_the_shader_trusts_the_sidecar_an_inverted_claim_flips_the_order",)),
+    Mutation("preview-term-distortion-sign",
+             "the back-light vector is L − N·distortion instead of the published L + N·distortion",
+             "thickbake/preview/viewer.js",
+             "vec3 ltLight = L + N * uDistortion;",
+             "vec3 ltLight = L - N * uDistortion;",
+             ("tests/test_preview.py::test_distortion_power_scale_and_ambient_act_as_published",)),
 )
 
 

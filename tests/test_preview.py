@@ -341,3 +341,39 @@ def test_rgb_medium_map_glows_redder_through_the_thin_sphere(baked, tmp_path):
     rel = 2 * (d_err * sigma + 0.006) + 2 / 65535
     assert measured[2] > measured[1] > measured[0] > 1
     assert np.all(np.abs(measured / expected - 1) < rel), (measured, expected, rel)
+
+
+def test_distortion_power_scale_and_ambient_act_as_published(baked):
+    """At the pixel through a sphere's centre the surface faces the eye (N = V), so with the light
+    behind (L = −z) the term's angular part is dot(V, −(L + N·δ)) = c − δ, c = dot(V, −L) = cos of the
+    eye ray's tilt off the axis (Barré-Brisebois & Bouchard 2011).  Two stills differ only in the term:
+    A (δ 0, power 1, scale 1, ambient 0) gives k·c; B (δ 0.5, power 2, scale 1.5, ambient 0.2) gives
+    k·((c − 0.5)²·1.5 + 0.2), with the same k = albedo · transmission.  The viewer stands 1.05 /
+    sin(17.5°) = 3.5 bounding radii from the box centre (viewer.js) and the thick sphere's centre lies
+    within half a radius of it (0.32 of 0.655), so the tilt is below atan(0.5 / 3.5) = 8.1° < 15°,
+    c ∈ [cos 15°, 1] and B/A
+    lies in [0.544, 0.575]; the 3×3-pixel patch keeps N·V ≥ 0.995 (≤ 2 % on B), and 8-bit sRGB adds
+    0.6 % per still.  A sign error in L + N·δ would give about 3.6."""
+    _chromium_or_skip()
+    from PIL import Image
+    from scipy import ndimage
+
+    from thickbake.preview.page import ViewSettings, build_preview
+    from thickbake.preview.still import render_still
+
+    asset, map_path = baked
+    preview = build_preview(str(asset), [str(map_path)], ViewSettings(attenuation=ATTENUATION, background="#000000"))
+    centre = []
+    for term in ("distortion=0&power=1&scale=1&ambient=0", "distortion=0.5&power=2&scale=1.5&ambient=0.2"):
+        still = render_still(preview.html, 4 * SIZE, 2 * SIZE, params=f"{term}&fill=0&az=0&el=0")
+        assert still.errors == []
+        rgb = np.asarray(Image.open(io.BytesIO(still.png)).convert("RGB"))
+        half = rgb.shape[1] // 2
+        mask = rgb[:, half:].max(axis=2) > 8
+        row, col = (int(round(x)) for x in ndimage.center_of_mass(mask))
+        centre.append(_linear(rgb[row - 1:row + 2, half + col - 1:half + col + 2, 0]).mean())
+    ratio = centre[1] / centre[0]
+    low = ((math.cos(math.radians(15)) - 0.5) ** 2 * 1.5 + 0.2) / math.cos(math.radians(15))
+    high = 0.5 ** 2 * 1.5 + 0.2
+    slack = 0.02 + 2 * 0.006
+    assert low * (1 - slack) < ratio < high * (1 + slack), (ratio, low, high)
