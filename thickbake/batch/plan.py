@@ -103,7 +103,7 @@ MAP_TAG = ".thickness"  # the tag of the default measure; other measures use the
 LOCK_NAME = ".thickbake-batch.lock"
 #: Temporary files of :func:`thickbake.output.atomic_write_bytes` (``.<name>.<random>.tmp``) for the
 #: files a batch writes; only these are removed at start-up.
-_TEMP_NAME = re.compile(r"^\..+\.(png|tif|tiff|json|html)\.[A-Za-z0-9_]+\.tmp$")
+_TEMP_NAME = re.compile(r"^\..+\.(png|tif|tiff|exr|glb|gltf|json|html)\.[A-Za-z0-9_]+\.tmp$")
 #: Work of loading and encoding an asset, in ray equivalents, added to each asset's share of the
 #: progress bar so that many tiny bakes do not read as instant.
 _ASSET_OVERHEAD_RAYS = 200_000
@@ -158,6 +158,7 @@ class AssetJob:
     solo: bool = False
     maps: list = field(default_factory=list)
     transfer: dict = field(default_factory=dict)
+    outputs: dict = field(default_factory=dict)
 
     @property
     def sidecar_rel(self) -> str:
@@ -267,9 +268,12 @@ def plan_batch(src, out, config=None, force: bool = False) -> BatchPlan:
         options = rules.options_for(rel)
         settings, _ = settings_from_mapping(options.settings)
         transfer = options.transfer_inputs(rel)
-        jobs.append(AssetJob(rel=rel, source=src_abs / rel, map_rel=map_name(rel, options.format, settings.measure),
-                             options=options, requested_hash=_requested_hash(settings, transfer),
-                             cost=_bake_cost(settings), transfer=transfer))
+        job = AssetJob(rel=rel, source=src_abs / rel, map_rel=map_name(rel, options.format, settings.measure),
+                       options=options, requested_hash=_requested_hash(settings, transfer, options),
+                       cost=_bake_cost(settings) * (1 + len(set((options.delivery.get("pack") or {}).values())
+                                                            - {settings.measure})), transfer=transfer)
+        _plan_outputs(job)
+        jobs.append(job)
     # a mesh that an asset measures in (its source or cage) is an input, not an asset of its own
     inputs = {p for job in jobs for p in job.transfer.get("source", []) + [job.transfer.get("cage")] if p}
     jobs = [job for job in jobs if job.rel not in inputs]
@@ -279,11 +283,19 @@ def plan_batch(src, out, config=None, force: bool = False) -> BatchPlan:
     return plan
 
 
-def _requested_hash(settings: BakeSettings, transfer: dict) -> str:
-    """The settings hash, joined with the transfer's inputs (source and cage names, search distance)."""
-    if not transfer:
+def _requested_hash(settings: BakeSettings, transfer: dict, options: AssetOptions | None = None) -> str:
+    """The settings hash, joined with the transfer's inputs (source and cage names, search distance) and
+    the delivery options when there are any (so that changing them rebakes, while a batch without them
+    keeps the hashes earlier versions recorded)."""
+    delivery = options.delivery if options is not None else {}
+    if not transfer and not delivery:
         return settings.content_hash()
-    blob = json.dumps({"settings": settings.content_hash(), "transfer": transfer}, sort_keys=True)
+    parts = {"settings": settings.content_hash()}
+    if transfer:
+        parts["transfer"] = transfer
+    if delivery:
+        parts["delivery"] = delivery
+    blob = json.dumps(parts, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()
 
 
@@ -295,6 +307,22 @@ def _transfer_digest(src: Path, inputs_sha256: str, transfer: dict) -> str:
         digest.update(rel.encode())
         digest.update(input_digests(path)[1].encode() if path.is_file() else b"missing")
     return digest.hexdigest()
+
+
+def _plan_outputs(job: AssetJob) -> None:
+    """Names (in the map's folder) of the files the delivery options add: ``<stem>.volume.glb|.gltf``
+    for a glTF copy, ``<stem>.packed.png`` (+ ``.json``) for packed channels."""
+    delivery = job.options.delivery
+    stem = PurePosixPath(job.rel).stem
+    suffix = PurePosixPath(job.rel).suffix.lower()
+    if delivery.get("write_gltf"):
+        if suffix not in (".glb", ".gltf"):
+            job.status, job.failure_kind = "failed", "user"
+            job.error = (f"{job.source}: write_gltf applies to glTF sources (.glb/.gltf), this is {suffix}; limit "
+                         "the rule that sets it with match = \"**/*.glb\" or similar")
+        job.outputs["gltf"] = f"{stem}.volume{suffix}"
+    if delivery.get("pack"):
+        job.outputs["packed"] = f"{stem}.packed.png"
 
 
 def _bake_cost(settings: BakeSettings) -> float:
@@ -315,7 +343,41 @@ def _mark_name_clashes(jobs: list[AssetJob]) -> None:
                              "rename one of them (the map name drops the mesh file's suffix)")
 
 
+def _shared_groups(jobs) -> dict[str, list[AssetJob]]:
+    groups: dict[str, list[AssetJob]] = {}
+    for job in jobs:
+        name = job.options.delivery.get("shared_reach")
+        if name and job.status == "bake":
+            groups.setdefault(name, []).append(job)
+    return groups
+
+
 def _mark_up_to_date(plan: BatchPlan, force: bool) -> None:
+    # a shared-reach group is up to date only as a whole: each member's hash covers every member's input
+    for name, members in _shared_groups(plan.jobs).items():
+        keys = []
+        for job in members:
+            try:
+                keys.append([job.rel, input_digests(job.source)[1]])
+            except OSError:
+                keys.append([job.rel, None])
+        blob = json.dumps({"group": name, "members": sorted(keys, key=str)}, sort_keys=True)
+        for job in members:
+            job.requested_hash = hashlib.sha256((job.requested_hash + blob).encode()).hexdigest()
+    _mark_each_up_to_date(plan, force)
+    groups: dict[str, list[AssetJob]] = {}
+    for job in plan.jobs:
+        name = job.options.delivery.get("shared_reach")
+        if name and job.status in ("bake", "skipped"):
+            groups.setdefault(name, []).append(job)
+    for members in groups.values():
+        if any(j.status == "bake" for j in members):
+            for job in members:
+                if job.status == "skipped":
+                    job.status, job.reason = "bake", "another asset of its shared-reach group is baked"
+
+
+def _mark_each_up_to_date(plan: BatchPlan, force: bool) -> None:
     failed_before = {} if force else _previous_user_failures(plan.out)
     for job in plan.jobs:
         if job.status != "bake":
@@ -401,6 +463,14 @@ def _outdated_reason(job: AssetJob, out: Path) -> str | None:
             return "the map is unreadable"
         maps.append({"map": map_rel, "sidecar": PurePosixPath(map_rel).with_suffix(".json").as_posix(), "data": data,
                      "thumbnail": None})
+    recorded = found[0][1].get("batch") if isinstance(found[0][1].get("batch"), dict) else {}
+    outputs = recorded.get("outputs") if isinstance(recorded.get("outputs"), dict) else {}
+    for name, digest in outputs.items():  # delivery files (glTF copy, packed image) beside the maps
+        try:
+            if file_sha256(out / folder / name) != digest:
+                return f"{name} does not match the sidecar"
+        except OSError:
+            return f"{name} is missing"
     job.maps = maps
     job.sidecar = maps[0]["data"]
     return None
@@ -555,7 +625,28 @@ def _run_jobs(plan: BatchPlan, todo: list[AssetJob], runner, threads: int | None
     total_cost = sum(j.cost for j in todo)
     tally = {"cost": 0.0, "rays": 0, "done": 0, "failed": 0}
 
+    group_left: dict[str, int] = {}
+    for job in todo:
+        name = job.options.delivery.get("shared_reach")
+        if name:
+            group_left[name] = group_left.get(name, 0) + 1
+    held: dict[str, list] = {}
+
     def finish(job: AssetJob, result: dict) -> None:
+        name = job.options.delivery.get("shared_reach")
+        if name:
+            group_left[name] -= 1
+            if result.get("status") == "baked":
+                held.setdefault(name, []).append((job, result))
+            else:
+                finish_one(job, result)
+            if group_left[name] == 0:
+                for member, outcome in _finish_group(plan, name, held.pop(name, []), threads):
+                    finish_one(member, outcome)
+            return
+        finish_one(job, result)
+
+    def finish_one(job: AssetJob, result: dict) -> None:
         _apply_result(plan.out, job, result)
         tally["cost"] += job.cost
         tally["done"] += 1
@@ -614,11 +705,46 @@ def _run_jobs(plan: BatchPlan, todo: list[AssetJob], runner, threads: int | None
                 if job.status == "bake":
                     job.status, job.reason = "not started", "abandoned by a second interrupt before it was written"
             return True
+    for items in held.values():  # groups cut short by an interrupt: nothing of theirs is written
+        for job, _ in items:
+            job.status, job.reason = "not started", "its shared-reach group did not finish (interrupted)"
     return interrupts.count > 0
+
+
+def _finish_group(plan: BatchPlan, name: str, items: list, threads: int | None) -> list:
+    """Encode the baked members of a shared-reach group with one reach: the largest of their fitted
+    reaches (``reach = "fit"``), so every map of the group decodes with the same factor."""
+    from thickbake.batch.runners import task_outputs
+    from thickbake.pipeline.finish import with_reach
+
+    if not items:
+        return []
+    fitted = {job.rel: max(r.settings.reach for r in result["deferred"]["baked"]["thickness"])
+              for job, result in items}
+    reach = max(fitted.values())
+    record = {"group": name, "reach": reach, "members": sorted(fitted), "rule": "largest fitted reach of the members"}
+    out = []
+    for job, result in items:
+        deferred = result["deferred"]
+        baked = dict(deferred["baked"])
+        baked["thickness"] = [with_reach(r, reach, record) for r in baked["thickness"]]
+        try:
+            outcome = task_outputs(_task(plan, job, threads), baked, deferred["volume_plan"])
+        except ThickbakeError as exc:
+            outcome = {"status": "failed", "error": exc.one_line(), "failure": "user"}
+        else:
+            outcome.update(status="baked", threads=result.get("threads"), worker=result.get("worker"),
+                           worker_seconds=result.get("worker_seconds"),
+                           warnings=list(result.get("warnings") or []) + outcome.pop("delivery_warnings"))
+        out.append((job, outcome))
+    return out
 
 
 def _task(plan: BatchPlan, job: AssetJob, threads: int | None) -> dict:
     return {
+        "delivery": dict(job.options.delivery),
+        "outputs": dict(job.outputs),
+        "out_dir": str((plan.out / job.map_rel).parent),
         "source": str(job.source),
         "map_name": PurePosixPath(job.map_rel).name,
         "format": job.options.format,
@@ -638,7 +764,7 @@ def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
     Maps of an earlier bake of the same asset that this bake no longer makes (the asset lost a
     material or a tile) are removed, so the folder holds exactly the asset's current maps.
     """
-    from thickbake.maps.files import write_map
+    from thickbake.maps.files import atomic_write_bytes, write_map
 
     job.worker_seconds = result.get("worker_seconds")
     job.threads = result.get("threads")
@@ -654,6 +780,12 @@ def _apply_result(out: Path, job: AssetJob, result: dict) -> None:
     stale = {side for side, _ in _asset_sidecars(job, out)}
     maps = []
     try:
+        for name, blob in (result.get("extra_files") or {}).items():  # delivery files before the maps
+            try:
+                atomic_write_bytes(out / folder / name, blob)
+            except OSError as exc:
+                raise ThickbakeError(f"cannot write {name} ({exc.strerror or exc})", path=out / folder / name,
+                                     fix="check the folder is writable and has free space") from None
         for item in result["maps"]:
             map_rel = (folder / item["name"]).as_posix()
             side_rel = PurePosixPath(map_rel).with_suffix(".json").as_posix()

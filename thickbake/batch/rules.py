@@ -54,9 +54,11 @@ from thickbake.settings import OPTION_KEYS, settings_from_mapping
 #: Name of the rules file looked for in the source folder when ``--config`` is not given.
 DEFAULT_RULES_NAME = "thickbake.toml"
 #: Map file types a rules file may ask for, with the suffix each writes.
-FORMATS = {"png": ".png", "tif": ".tif"}
+FORMATS = {"png": ".png", "tif": ".tif", "exr": ".exr"}
 #: Keys of the rules file that are not bake settings.
-OUTPUT_KEYS = ("format",)
+OUTPUT_KEYS = ("format", "write_gltf", "gltf_transmission", "pack", "shared_reach")
+#: Output keys that add files beside the map (the batch's delivery options, see :class:`AssetOptions`).
+DELIVERY_KEYS = ("write_gltf", "gltf_transmission", "pack", "shared_reach")
 #: Keys that make an asset's bake a transfer from another mesh (names relative to the asset's folder).
 TRANSFER_KEYS = ("source", "cage", "search_distance")
 #: Placeholders a source or cage name may use.
@@ -108,11 +110,18 @@ class AssetOptions:
         ``"png"`` or ``"tif"``.
     rules : tuple of int
         Numbers of the rules that matched, in order.
+    delivery : dict
+        Delivery keys that are set: ``write_gltf`` (true: also write ``<stem>.volume.glb|.gltf``, a copy
+        of a glTF source with KHR_materials_volume), ``gltf_transmission`` (0–1), ``pack`` (a table
+        ``{channel = measure}``: those measures in the channels of ``<stem>.packed.png``) and
+        ``shared_reach`` (a group name: every asset of the group gets one thickness reach, the largest
+        of their fitted reaches, so a library decodes with one factor).
     """
 
     settings: dict
     format: str
     rules: tuple[int, ...]
+    delivery: dict = field(default_factory=dict)
     transfer: dict = field(default_factory=dict)
 
     def transfer_inputs(self, rel_path: str) -> dict:
@@ -147,9 +156,13 @@ class RulesFile:
                 used.append(rule.number)
         fmt = merged.pop("format", "png")
         transfer = {k: merged.pop(k) for k in TRANSFER_KEYS if k in merged}
+        delivery = {k: merged.pop(k) for k in DELIVERY_KEYS if k in merged}
+        if delivery.get("write_gltf") is False:
+            delivery.pop("write_gltf")
         tables = "[defaults]" + "".join(f", rule #{n}" for n in used)
         try:
-            settings_from_mapping(merged, where=self._where())
+            settings, _ = settings_from_mapping(merged, where=self._where())
+            _check_delivery(settings, fmt, delivery)
         except ThickbakeError as exc:
             raise ThickbakeError(f"settings for {rel_path} (from {tables}): {exc.message}",
                                  path=self.path, fix=exc.fix) from None
@@ -160,7 +173,7 @@ class RulesFile:
         if "cage" in transfer and "search_distance" in transfer:
             raise ThickbakeError(f"settings for {rel_path} (from {tables}): both cage and search_distance",
                                  path=self.path, fix="keep one: the cage sets the search distance at every point")
-        return AssetOptions(settings=merged, format=fmt, rules=tuple(used), transfer=transfer)
+        return AssetOptions(settings=merged, format=fmt, rules=tuple(used), transfer=transfer, delivery=delivery)
 
     def unused_rules(self, rel_paths) -> list[Rule]:
         """Rules that match none of ``rel_paths`` (usually a typo in ``match``)."""
@@ -168,6 +181,38 @@ class RulesFile:
 
     def _where(self) -> str:
         return str(self.path) if self.path else "batch settings"
+
+
+def _check_delivery(settings, fmt: str, delivery: dict) -> None:
+    """Combinations of delivery keys and settings that cannot work (each key alone was checked on load)."""
+    if settings.medium and fmt == "tif":
+        raise ThickbakeError("an RGB transmittance map (medium) cannot be a float TIFF", fix='use format = "png" or "exr"')
+    if delivery.get("write_gltf") and (settings.measure != "thickness" or settings.invert):
+        raise ThickbakeError("write_gltf needs the thickness measure, not inverted",
+                             fix='leave measure = "thickness" and invert = false where write_gltf = true')
+    if "gltf_transmission" in delivery and not delivery.get("write_gltf"):
+        raise ThickbakeError("gltf_transmission goes with write_gltf = true", fix="add write_gltf = true")
+    if "shared_reach" in delivery and (settings.measure != "thickness" or not isinstance(settings.reach, (str, type(None)))):
+        raise ThickbakeError("shared_reach gives thickness maps one fitted reach",
+                             fix="use it with measure = \"thickness\" and without a numeric reach")
+
+
+def _check_delivery_value(key: str, value) -> str | None:
+    """Why a delivery key's value is not allowed (None when it is)."""
+    if key == "write_gltf":
+        return None if isinstance(value, bool) else "use true or false"
+    if key == "gltf_transmission":
+        ok = isinstance(value, (int, float)) and not isinstance(value, bool) and 0 <= value <= 1
+        return None if ok else "use a number from 0 to 1"
+    if key == "shared_reach":
+        return None if isinstance(value, str) and value.strip() else 'use a group name, e.g. shared_reach = "wax"'
+    if key == "pack":
+        from thickbake.measures import MEASURES as KNOWN
+
+        ok = (isinstance(value, dict) and value and all(k in ("r", "g", "b", "a") for k in value)
+              and all(v in KNOWN for v in value.values()))
+        return None if ok else "use a table of channel = measure, e.g. pack = { r = \"thickness\", b = \"occlusion\" }"
+    return None
 
 
 def find_rules_file(src: Path, config: str | os.PathLike | None) -> Path | None:
@@ -368,6 +413,10 @@ def _check_table(table: dict, path: Path, lines: "_KeyLines", section, where: st
             if value not in FORMATS:
                 raise ThickbakeError(f"{_at(line)}{where}: format = {value!r} is not allowed", path=path,
                                      fix=f"use {' or '.join(repr(f) for f in FORMATS)}")
+        elif key in DELIVERY_KEYS:
+            why = _check_delivery_value(key, value)
+            if why:
+                raise ThickbakeError(f"{_at(line)}{where}: {key} = {value!r} is not allowed", path=path, fix=why)
         elif key in SETTING_KEYS:
             try:
                 settings_from_mapping({key: value}, where=str(path))

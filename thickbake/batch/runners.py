@@ -13,6 +13,7 @@ to keep in flight), ``submit(task)`` → handle, ``wait(handles, timeout)`` → 
 from __future__ import annotations
 
 import concurrent.futures as cf
+import hashlib
 import multiprocessing
 import os
 import signal
@@ -87,34 +88,106 @@ def bake_asset(task: dict) -> dict:
 
 
 def _bake_asset(task: dict) -> dict:
-    from thickbake.maps.naming import default_name, name_fields, stem_of
     from thickbake.pipeline.driver import bake_maps
     from thickbake.pipeline.load import load_asset
-    from thickbake.batch.report import thumbnail_png
-    from thickbake.maps.sidecar import with_batch_record
 
     settings, run = settings_from_mapping(task["settings"], where=task["source"])
     if run.threads is None:
         run = run.replace(threads=task.get("threads") or _threads_here())
+    delivery = task.get("delivery") or {}
+    if delivery.get("shared_reach"):
+        settings = settings.replace(reach="fit")  # the batch sets the group's reach when all are baked
+    volume_plan = None
+    if delivery.get("write_gltf"):
+        from thickbake.pipeline.deliver import check_volume_request
+
+        volume_plan = check_volume_request(task["source"], Path(task["out_dir"]) / task["outputs"]["gltf"], settings,
+                                           uv_set=settings.uv_set, transmission=delivery.get("gltf_transmission"))
     asset = load_asset(task["source"])
-    results = bake_maps(asset, settings, run, **(task.get("transfer") or {}))
+    transfer = task.get("transfer") or {}
+    if transfer:
+        from thickbake.pipeline.transfer import load_source
+
+        transfer = dict(transfer, source=load_source(transfer["source"]))  # once, for every measure baked
+    baked = {settings.measure: bake_maps(asset, settings, run, **transfer)}
+    for measure in (delivery.get("pack") or {}).values():
+        if measure not in baked:
+            from thickbake.pipeline.deliver import settings_for_measure
+
+            baked[measure] = bake_maps(asset, settings_for_measure(settings, measure), run, **transfer)
+    if delivery.get("pack") and len(baked[settings.measure]) > 1:
+        raise ThickbakeError(f"pack packs one map, and the asset makes {len(baked[settings.measure])} (one per "
+                             "material, UV set and tile)", path=task["source"],
+                             fix="leave pack out for this asset (a rule with a narrower match)")
+    if volume_plan is not None and any(r.key.tile is not None for r in baked[settings.measure]):
+        raise ThickbakeError("the UV layout spans UDIM tiles, which glTF textures cannot address",
+                             path=task["source"], fix="leave write_gltf out for this asset")
     # in a transfer the target is not traced: its holes and winding do not matter, its UVs do
     target_warnings = [w for w in asset.report.warnings if not task.get("transfer") or "UV" in w]
+    warnings = target_warnings + [w for rs in baked.values() for r in rs for w in r.info["warnings"]]
+    if delivery.get("shared_reach"):
+        return {"deferred": {"baked": baked, "volume_plan": volume_plan}, "threads": run.threads,
+                "warnings": warnings}
+    out = task_outputs(task, baked, volume_plan)
+    out.update(threads=run.threads, warnings=warnings + out.pop("delivery_warnings"))
+    return out
+
+
+def task_outputs(task: dict, baked: dict, volume_plan) -> dict:
+    """Encode a finished bake into the files of its task: the maps, their sidecars and thumbnails, and
+    the delivery files (glTF copy, packed PNG and its sidecar), all as bytes; nothing is written.
+
+    ``baked`` maps each measure baked to its list of map results (the first is the task's measure).
+    The batch calls this itself for a shared-reach group, once the group's reach is known.
+    """
+    from thickbake.batch.report import thumbnail_png
+    from thickbake.maps.files import json_bytes
+    from thickbake.maps.naming import default_name, name_fields, stem_of
+    from thickbake.maps.sidecar import with_batch_record
+
+    settings, _ = settings_from_mapping(task["settings"], where=task["source"])
+    delivery = task.get("delivery") or {}
+    results = baked[settings.measure]
     suffix = FORMATS[task["format"]]
     assert Path(task["map_name"]).suffix.lower() == suffix
     keys = [dict(r.key.to_dict(), material_index=r.key.material_index) for r in results]
     stem = stem_of(task["source"]) if len(results) > 1 else None
     names = ([default_name(f, suffix) for f in name_fields(stem, settings.measure, keys)] if stem
              else [task["map_name"]])
+    out_dir = Path(task["out_dir"])
+    extra: dict[str, bytes] = {}
+    notes: list[str] = []
+    if volume_plan is not None:
+        from thickbake.pipeline.deliver import write_gltf_copy
+
+        maps = ([(results[0], None, settings.uv_set)] if len(results) == 1 else
+                [(r, [r.key.material_index], settings.uv_set) for r in results if r.key.material_index is not None])
+        files, report = write_gltf_copy(task["source"], out_dir / task["outputs"]["gltf"], volume_plan, maps,
+                                        delivery.get("gltf_transmission"), write=False)
+        notes += report.pop("warnings")
+        for r in results:
+            r.info["gltf"] = report
+        extra.update({path.name: data for path, data in files.items()})
+    if delivery.get("pack"):
+        from thickbake.pipeline.deliver import packed_outputs
+
+        channels = [(c, m) for c, m in delivery["pack"].items()]
+        name = task["outputs"]["packed"]
+        data, side, record = packed_outputs(out_dir / name, channels, {m: rs[0] for m, rs in baked.items()},
+                                            settings.bits, fresh=True)
+        extra[name] = data
+        extra[str(Path(name).with_suffix(".json"))] = json_bytes(side)
+        results[0].info["packed_into"] = record
+    outputs = {name: hashlib.sha256(blob).hexdigest() for name, blob in extra.items()}
     maps = []
     for result, name in zip(results, names):
         image = result.image(suffix)
         data, sidecar = result.encode(name, image)
-        sidecar = with_batch_record(sidecar, dict(task["batch"], maps=names), data)
+        sidecar = with_batch_record(sidecar, dict(task["batch"], maps=names, **({"outputs": outputs} if outputs else {})),
+                                    data)
         maps.append({"name": name, "map_bytes": data, "sidecar": sidecar, "thumbnail": thumbnail_png(image),
                      "warnings": list(result.info["warnings"])})
-    return {"maps": maps, "threads": run.threads,
-            "warnings": target_warnings + [w for m in maps for w in m["warnings"]]}
+    return {"maps": maps, "extra_files": extra, "delivery_warnings": notes}
 
 
 def _threads_here() -> int:

@@ -116,6 +116,8 @@ def run(args) -> int:
         from thickbake.maps.packing import load_target
 
         load_target(args.pack_into, settings.bits)  # an unreadable target is refused before baking
+    from thickbake.pipeline.deliver import settings_for_measure
+
     # in a transfer the target is not traced: its holes and winding do not matter, its UVs do
     warned = [w for w in asset.report.warnings if not transfer or "UV" in w]
     print_warnings(warned, args.mesh)
@@ -128,8 +130,8 @@ def run(args) -> int:
         bar = ProgressBar(f"baking {os.path.basename(args.mesh)}" + (f" ({measure})" if len(channels) > 1 else ""),
                           enabled=False if args.quiet else None)
         try:
-            baked[measure] = bake_maps(asset, settings if measure == settings.measure else settings.replace(measure=measure),
-                                       run_options, progress=bar, **transfer)
+            baked[measure] = bake_maps(asset, settings_for_measure(settings, measure), run_options, progress=bar,
+                                       **transfer)
         finally:
             bar.close()
     results = baked[settings.measure]
@@ -225,24 +227,12 @@ def _channel_plan(args, settings) -> list[tuple[str, str]]:
 
 def _pack(image: str, channels, results: dict, bits: int) -> dict:
     """Write the packed PNG and its sidecar; returns the map sidecar's record of it."""
-    from thickbake.maps.encode import decode_coefficients
     from thickbake.maps.files import write_map
-    from thickbake.maps.packing import merged_sidecar, pack_channels
+    from thickbake.pipeline.deliver import packed_outputs
 
-    data, facts = pack_channels(image, {c: results[m].stored() for c, m in channels}, bits)
-    top = (1 << facts["bits"]) - 1
-    entries = {}
-    for channel, measure in channels:
-        r = results[measure]
-        offset, scale = decode_coefficients(measure, r.settings.reach, r.settings.invert)
-        entries[channel] = {"measure": measure, "units": r.info["units"], "reach": r.settings.reach,
-                            "inverted": r.settings.invert, "input": r.info["input"],
-                            "settings_hash": r.info["settings_hash"],
-                            "encoding": {"code_max": top, "offset": offset, "scale": scale,
-                                         "formula": f"{measure} = {offset:g} + {scale:g} * code / {top}"}}
-    write_map(image, data, merged_sidecar(image, entries, facts["bits"]))
-    return {"image": Path(image).name, "channels": {c: m for c, m in channels}, "bits": facts["bits"],
-            "existed": facts["existed"]}
+    data, sidecar, record = packed_outputs(image, channels, results, bits)
+    write_map(image, data, sidecar)
+    return record
 
 
 def _settings_text(settings: dict) -> str:

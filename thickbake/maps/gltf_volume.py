@@ -457,14 +457,10 @@ def check_gltf_output(source: str | os.PathLike, out: str | os.PathLike) -> Path
     return out
 
 
-def write_volume_copy(source: str | os.PathLike, out: str | os.PathLike, plan: VolumePlan,
-                      maps: list[VolumeMap], transmission: float | None = None) -> dict:
-    """Read ``source``, add the maps and write the copy at ``out`` (side images first, atomically).
-
-    Returns the report of :func:`add_volume` with the written file names.
-    """
-    from thickbake.maps.files import atomic_write_bytes
-
+def volume_copy_files(source: str | os.PathLike, out: str | os.PathLike, plan: VolumePlan, maps: list[VolumeMap],
+                      transmission: float | None = None) -> tuple[dict[Path, bytes], dict]:
+    """The files of the glTF copy at ``out`` — {path: bytes}, side images first, the copy last — and the
+    report of :func:`add_volume` with the file names.  Nothing is written (batch workers use this)."""
     out = Path(out)
     gf = read_gltf(source)
     names = None
@@ -473,13 +469,26 @@ def write_volume_copy(source: str | os.PathLike, out: str | os.PathLike, plan: V
         names = [f"{stem}.{m.name}.png" if len(maps) == 1 else f"{stem}.{m.name}.{i}.png" for i, m in enumerate(maps)]
         rebase_uris(gf.doc, gf.path.parent, out.parent)  # before adding: the new images live beside the output
     copy, side, report = add_volume(gf, plan, maps, transmission, names)
-    for name, data in side.items():
-        atomic_write_bytes(out.parent / name, data)
-    atomic_write_bytes(out, gltf_output_bytes(copy))
+    files = {out.parent / name: data for name, data in side.items()}
+    files[out] = gltf_output_bytes(copy)
     report["file"] = out.name
     report["images"] = sorted(side)
+    return files, report
+
+
+def write_volume_copy(source: str | os.PathLike, out: str | os.PathLike, plan: VolumePlan,
+                      maps: list[VolumeMap], transmission: float | None = None) -> dict:
+    """Read ``source``, add the maps and write the copy at ``out`` (side images first, atomically).
+
+    Returns the report of :func:`add_volume` with the written file names.
+    """
+    from thickbake.maps.files import atomic_write_bytes
+
+    files, report = volume_copy_files(source, out, plan, maps, transmission)
+    for path, data in files.items():
+        atomic_write_bytes(path, data)
     return report
 
 
 __all__ = ["GltfFile", "VolumeMap", "VolumePlan", "read_gltf", "plan_volume", "add_volume", "glb_bytes",
-           "gltf_output_bytes", "check_gltf_output", "write_volume_copy", "mesh_instances", "uniform_scale"]
+           "gltf_output_bytes", "check_gltf_output", "write_volume_copy", "volume_copy_files", "mesh_instances", "uniform_scale"]

@@ -58,7 +58,8 @@ def load_target(path: str | os.PathLike, bits: int) -> tuple[np.ndarray, bool]:
     return samples, True
 
 
-def pack_channels(path: str | os.PathLike, stored: dict[str, np.ndarray], bits: int) -> tuple[bytes, dict]:
+def pack_channels(path: str | os.PathLike, stored: dict[str, np.ndarray], bits: int,
+                  fresh: bool = False) -> tuple[bytes, dict]:
     """The packed PNG's bytes and what it now holds.
 
     Parameters
@@ -68,6 +69,8 @@ def pack_channels(path: str | os.PathLike, stored: dict[str, np.ndarray], bits: 
         Normalised map values (as :meth:`BakeResult.stored` gives them) for each channel to write.
     bits : {8, 16}
         Bit depth of a new image (an existing image keeps its own).
+    fresh : bool
+        Start from a new image even when ``path`` exists.
 
     Returns
     -------
@@ -75,7 +78,7 @@ def pack_channels(path: str | os.PathLike, stored: dict[str, np.ndarray], bits: 
     """
     first = next(iter(stored.values()))
     height, width = first.shape
-    samples, existed = load_target(path, bits)
+    samples, existed = (None, False) if fresh else load_target(path, bits)
     if samples is None:
         dtype = np.uint16 if bits == 16 else np.uint8
         samples = np.zeros((height, width, 4), dtype)

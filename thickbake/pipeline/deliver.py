@@ -12,7 +12,8 @@ import os
 from pathlib import Path
 
 from thickbake.errors import ThickbakeError
-from thickbake.maps.gltf_volume import VolumeMap, VolumePlan, check_gltf_output, plan_volume, write_volume_copy
+from thickbake.maps.gltf_volume import (VolumeMap, VolumePlan, check_gltf_output, plan_volume, volume_copy_files,
+                                         write_volume_copy)
 from thickbake.maps.png import encode_png
 from thickbake.settings import BakeSettings
 
@@ -44,22 +45,68 @@ def volume_map(result, uv_set: int = 0, materials=None, name: str = "thickness")
 
 
 def write_gltf_copy(source: str | os.PathLike, out: str | os.PathLike, plan: VolumePlan, maps,
-                    transmission: float | None = None) -> dict:
+                    transmission: float | None = None, write: bool = True):
     """Write the glTF copy; ``maps`` is a list of ``(result, materials or None, uv_set)``.
 
     Returns the report (materials, factors, files) for the sidecar ``gltf`` block, with a warning
-    list: KHR_materials_volume only shows when light can pass the surface.
+    list: KHR_materials_volume only shows when light can pass the surface.  With ``write=False``
+    nothing is written and the return value is ``({path: bytes}, report)``.
     """
-    vmaps = [volume_map(result, uv_set, materials, name=f"{Path(out).stem}.thickness" if len(maps) == 1 else
-                        f"{Path(out).stem}.thickness.{i}") for i, (result, materials, uv_set) in enumerate(maps)]
-    report = write_volume_copy(source, out, plan, vmaps, transmission)
+    vmaps = [volume_map(result, uv_set, materials, name="thickness" if len(maps) == 1 else f"thickness.{i}")
+             for i, (result, materials, uv_set) in enumerate(maps)]
+    if write:
+        files, report = None, write_volume_copy(source, out, plan, vmaps, transmission)
+    else:
+        files, report = volume_copy_files(source, out, plan, vmaps, transmission)
     report["warnings"] = []
     opaque = [str(m["name"] or m["material"]) for m in report["materials"] if not m["transmits"]]
     if opaque:
         report["warnings"].append(f"material {', '.join(opaque)} has no extension that lets light through its "
                                   "surface, and KHR_materials_volume takes effect only with one "
                                   "(KHR_materials_transmission or diffuse transmission); add it with --gltf-transmission F")
-    return report
+    return report if write else (files, report)
 
 
-__all__ = ["check_volume_request", "volume_map", "write_gltf_copy"]
+def settings_for_measure(settings: BakeSettings, measure: str) -> BakeSettings:
+    """The settings of a second measure baked in the same run (channel packing): the same options,
+    without those that only apply to thickness (``reach = "fit"``, a medium)."""
+    if measure == settings.measure:
+        return settings
+    reach = None if settings.reach == "fit" else settings.reach
+    return settings.replace(measure=measure, reach=reach, medium=None, scene_unit=None)
+
+
+def packed_outputs(image: str | os.PathLike, channels, results: dict, bits: int, fresh: bool = False):
+    """The packed PNG's bytes, its sidecar, and the map sidecar's record of it.
+
+    Parameters
+    ----------
+    image : path of the PNG to pack into (read when it exists, unless ``fresh``)
+    channels : list of (channel, measure)
+    results : {measure: BakeResult}
+    bits : bit depth of a new image
+    fresh : start from a new image even if ``image`` exists (batch outputs are rebuilt whole)
+    """
+    from thickbake.maps.encode import decode_coefficients
+    from thickbake.maps.packing import merged_sidecar, pack_channels
+
+    data, facts = pack_channels(image, {c: results[m].stored() for c, m in channels}, bits, fresh=fresh)
+    top = (1 << facts["bits"]) - 1
+    entries = {}
+    for channel, measure in channels:
+        r = results[measure]
+        offset, scale = decode_coefficients(measure, r.settings.reach, r.settings.invert)
+        entries[channel] = {"measure": measure, "units": r.info["units"], "reach": r.settings.reach,
+                            "inverted": r.settings.invert, "input": r.info["input"],
+                            "settings_hash": r.info["settings_hash"],
+                            "encoding": {"code_max": top, "offset": offset, "scale": scale,
+                                         "formula": f"{measure} = {offset:g} + {scale:g} * code / {top}"}}
+    sidecar = merged_sidecar(image, {} if fresh else entries, facts["bits"])
+    if fresh:
+        sidecar["channels"] = {c: entries[c] for c in "rgba" if c in entries}
+    record = {"image": Path(image).name, "channels": {c: m for c, m in channels}, "bits": facts["bits"],
+              "existed": facts["existed"]}
+    return data, sidecar, record
+
+
+__all__ = ["check_volume_request", "volume_map", "write_gltf_copy", "packed_outputs", "settings_for_measure"]

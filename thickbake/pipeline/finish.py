@@ -51,6 +51,23 @@ def fit_reach(values: np.ndarray, covered: np.ndarray, traced_reach: float,
                    "texels_clipped": clipped}
 
 
+def with_reach(result, reach: float, record: dict | None = None):
+    """A copy of a thickness bake encoded with another reach (the batch's shared reach of a group).
+
+    The traced values are unchanged; the settings, the settings hash and the sidecar's reach follow
+    the new reach, and ``record`` is kept in the sidecar as ``shared_reach``.
+    """
+    import dataclasses
+
+    s = result.settings.replace(reach=float(reach))
+    info = dict(result.info, reach=float(reach), settings=s.to_dict(), settings_hash=s.content_hash())
+    if record is not None:
+        info["shared_reach"] = record
+    if "medium" in info:
+        info["medium"] = medium_record(s, info["medium"]["mm_per_unit"])
+    return dataclasses.replace(result, settings=s, info=info)
+
+
 def medium_scale(settings: BakeSettings, source_path: str | None) -> float | None:
     """Millimetres per scene unit for a medium bake (None without a medium).
 
@@ -72,4 +89,4 @@ def medium_record(settings: BakeSettings, mm_per_unit: float) -> dict:
     return medium_info(get_medium(settings.medium), mm_per_unit)
 
 
-__all__ = ["fit_reach", "medium_scale", "medium_record"]
+__all__ = ["fit_reach", "with_reach", "medium_scale", "medium_record"]
