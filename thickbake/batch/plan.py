@@ -732,6 +732,11 @@ def _finish_group(plan: BatchPlan, name: str, items: list, threads: int | None) 
             outcome = task_outputs(_task(plan, job, threads), baked, deferred["volume_plan"])
         except ThickbakeError as exc:
             outcome = {"status": "failed", "error": exc.one_line(), "failure": "user"}
+        except Exception as exc:  # a bug: this asset fails with its traceback, the batch goes on
+            import traceback
+
+            outcome = {"status": "failed", "failure": "internal", "traceback": traceback.format_exc(),
+                       "error": f"{job.source}: internal error ({type(exc).__name__}: {exc}); please report it"}
         else:
             outcome.update(status="baked", threads=result.get("threads"), worker=result.get("worker"),
                            worker_seconds=result.get("worker_seconds"),
