@@ -13,6 +13,10 @@ holds) and its sidecar ``OUT/<folders>/<stem>.<measure>.json``.  The batch also 
 ``OUT/report.json`` and ``OUT/report.html`` (:mod:`thickbake.report`) and keeps an empty lock file,
 ``OUT/.thickbake-batch.lock``, so that two batches cannot write into one folder at once.  Two sources
 that would get the same map name (``leaf.obj`` beside ``leaf.glb``) both fail with a message.
+Delivery keys add ``<stem>.volume.glb|.gltf`` (``write_gltf``) and ``<stem>.packed.png`` + ``.json``
+(``pack``) beside the maps; they are written before the maps, and the maps' sidecars record their
+checksums, so a missing or changed delivery file makes the asset out of date.  The assets of a
+``shared_reach`` group are encoded together once all of them are baked (:func:`_finish_group`).
 
 When an asset is up to date
 ---------------------------

@@ -27,7 +27,11 @@ A rule can also measure an asset in another mesh (a transfer bake, :mod:`thickba
 Source and cage names are paths relative to the asset's folder (``../sculpts/{base}.obj`` works).  A
 mesh that some asset names as its source or cage is an input, not an asset: it is not baked itself.
 
-Every key other than ``match``, ``format``, ``source``, ``cage`` and ``search_distance`` is a :class:`~thickbake.settings.BakeSettings` field
+Delivery keys add files beside the maps (see :class:`AssetOptions`): ``write_gltf = true`` (and
+``gltf_transmission``), ``pack = { r = "thickness", b = "occlusion" }`` and ``shared_reach = "NAME"``.
+
+Every key other than ``match``, ``format``, ``source``, ``cage``, ``search_distance`` and the delivery
+keys is a :class:`~thickbake.settings.BakeSettings` field
 (``size``, ``rays``, ``cone``, ``lobe``, ``measure``, ``reach``, ...) or a
 :class:`~thickbake.settings.RunOptions` field (``threads``, ``chunk_rays``, ``order``), validated
 exactly as the API and the command line validate them.  Globs are matched against the whole relative path, case-sensitively:
