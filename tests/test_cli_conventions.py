@@ -121,16 +121,17 @@ def test_interrupt_is_exit_130(assets, tmp_path, monkeypatch, capsys):
     assert "interrupted" in capsys.readouterr().err and list(tmp_path.iterdir()) == []
 
 
-def test_malformed_sidecar_gives_one_line_and_no_traceback(assets, tmp_path):
-    # a sidecar whose code_max is not a number: bad input (2) or, at worst, a reported internal error (70),
-    # never a traceback
+def test_malformed_sidecar_is_bad_input(assets, tmp_path):
+    # a sidecar whose code_max is not a number is the user's file, not a bug: exit 2, one line naming the
+    # sidecar and the field
     side = json.loads((assets / "a.json").read_text())
     side["encoding"]["code_max"] = "abc"
     shutil.copy(assets / "a.png", tmp_path / "bad.png")
     (tmp_path / "bad.json").write_text(json.dumps(side))
     proc = run("compare", tmp_path / "bad.png", assets / "a.png")
-    assert proc.returncode in (2, 70)
-    one_line_error(proc.stderr)
+    assert proc.returncode == 2
+    line = one_line_error(proc.stderr)
+    assert "bad.json" in line and "code_max" in line
 
 
 # ---------------------------------------------------------------------------- common flags
