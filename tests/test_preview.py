@@ -377,3 +377,32 @@ def test_distortion_power_scale_and_ambient_act_as_published(baked):
     high = 0.5 ** 2 * 1.5 + 0.2
     slack = 0.02 + 2 * 0.006
     assert low * (1 - slack) < ratio < high * (1 + slack), (ratio, low, high)
+
+
+def test_interactive_page_opens_from_a_file_with_its_controls(baked, tmp_path):
+    """Opened as a local file (no server, no network), the page builds its canvas and every control and
+    logs no error (the page records its console errors in <body data-errors>, read from Chromium's DOM dump)."""
+    _chromium_or_skip()
+    import html as html_lib
+    import re
+    import subprocess
+    import tempfile
+
+    from thickbake.preview.page import build_preview, write_preview
+    from thickbake.preview.still import CHROMIUM_FLAGS, find_chromium
+
+    asset, map_path = baked
+    page = tmp_path / "view.html"
+    write_preview(build_preview(str(asset), [str(map_path)]), page)
+    with tempfile.TemporaryDirectory() as profile:
+        proc = subprocess.run([find_chromium(), *CHROMIUM_FLAGS, f"--user-data-dir={profile}", "--window-size=800,600",
+                               "--virtual-time-budget=20000", "--dump-dom", page.as_uri()],
+                              capture_output=True, text=True, timeout=120)
+    body = re.search(r"<body([^>]*)>", proc.stdout)
+    assert body and 'data-ready="1"' in body.group(1), proc.stdout[:500]
+    errors = re.search(r'data-errors="([^"]*)"', body.group(1))
+    assert errors and json.loads(html_lib.unescape(errors.group(1))) == []
+    keys = set(re.findall(r'<label data-key="([a-z]+)"', proc.stdout))
+    assert {"distortion", "power", "scale", "ambient", "lightaz", "lightel", "attenuation"} <= keys
+    assert re.search(r'<select id="mode">.*value="lit".*value="surface".*value="uv"', proc.stdout, re.S)
+    assert "<canvas" in proc.stdout

@@ -430,6 +430,7 @@ function thickbakeViewer(THREE, DATA) {
       }) });
     }
     controls(view);
+    document.body.dataset.errors = JSON.stringify(window.thickbakeErrors || []);
     document.body.dataset.ready = '1';
     return null;
   });
