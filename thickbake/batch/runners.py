@@ -219,9 +219,12 @@ def _worker_name() -> str:
         return "unknown"
 
 
-def _worker_start(batch_pid: int) -> None:
-    """Pool process set-up: Ctrl-C is the batch's to handle, and a dead batch ends the process."""
+def _worker_start(batch_pid: int, pids=None) -> None:
+    """Pool process set-up: Ctrl-C is the batch's to handle, a dead batch ends the process, and the
+    process announces its pid on ``pids`` (a queue the batch reads to end the pool at once)."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if pids is not None:
+        pids.put(os.getpid())
     threading.Thread(target=_watch_batch, args=(batch_pid, os.getppid()), daemon=True).start()
 
 
@@ -266,20 +269,29 @@ class WorkerDied(Exception):
 
 
 class LocalRunner:
-    """A process pool of ``jobs`` processes (see :func:`_pool_context`)."""
+    """A process pool of ``jobs`` processes (see :func:`_pool_context`).
+
+    ``concurrent.futures`` has no public way to end a pool's processes at once (only to wait for or
+    cancel its tasks), so each process sends its pid on a queue when it starts, and :meth:`abandon`
+    signals those pids.
+    """
 
     def __init__(self, jobs: int, worker: Callable[[dict], dict]):
         self.jobs = jobs
         self.worker = worker
         self._pool: cf.ProcessPoolExecutor | None = None
+        self._pid_queue = None
 
     def capacity(self) -> int:
         return self.jobs
 
     def submit(self, task: dict):
         if self._pool is None:
-            self._pool = cf.ProcessPoolExecutor(max_workers=self.jobs, mp_context=_pool_context(),
-                                                initializer=_worker_start, initargs=(os.getpid(),))
+            context = _pool_context()
+            self._pid_queue = context.SimpleQueue()
+            self._pool = cf.ProcessPoolExecutor(max_workers=self.jobs, mp_context=context,
+                                                initializer=_worker_start,
+                                                initargs=(os.getpid(), self._pid_queue))
         return self._pool.submit(self.worker, task)
 
     def wait(self, handles, timeout: float):
@@ -297,17 +309,27 @@ class LocalRunner:
         if self._pool is not None:
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
+            self._pid_queue = None
 
     def abandon(self) -> None:
+        """End the pool's processes now: their bakes are dropped (nothing of theirs is written)."""
         if self._pool is None:
             return
-        for process in list(getattr(self._pool, "_processes", {}).values()):
+        for pid in self._started_pids():
             try:
-                process.terminate()
-            except Exception:
+                os.kill(pid, signal.SIGTERM)
+            except OSError:  # already gone
                 pass
         self._pool.shutdown(wait=False, cancel_futures=True)
         self._pool = None
+        self._pid_queue = None
+
+    def _started_pids(self) -> list[int]:
+        """Pids the pool's processes announced (each process is alive until the pool shuts down)."""
+        pids = []
+        while self._pid_queue is not None and not self._pid_queue.empty():
+            pids.append(self._pid_queue.get())
+        return pids
 
     def close(self) -> None:
         self.restart()

@@ -12,7 +12,7 @@ from __future__ import annotations
 import io
 import json
 import os
-import tempfile
+import secrets
 from pathlib import Path
 
 import numpy as np
@@ -21,19 +21,33 @@ from thickbake.errors import ThickbakeError
 from thickbake.maps.sidecar import described_map, sidecar_path
 
 IMAGE_SUFFIXES = (".png", ".tif", ".tiff", ".exr")
-#: The process umask, read once: ``tempfile.mkstemp`` creates 0600 files, and outputs should get the
-#: same permissions as any file the user creates (0644 under the usual umask 022).
-_UMASK = os.umask(0)
-os.umask(_UMASK)
+#: Permissions asked for when creating a file; the kernel takes the process umask off them (0644 under
+#: the usual umask 022), so outputs get the permissions of any file the user creates.  Creating the
+#: temporary file with ``os.open(..., 0o666)`` lets the kernel apply the umask, so the umask is never
+#: read or changed here (``os.umask`` can only be read by setting it, which races with other threads).
+FILE_MODE = 0o666
+#: Attempts at finding an unused temporary name (64 random bits each; a clash is astronomically rare).
+_TEMP_NAME_TRIES = 16
+
+
+def _create_temp(folder: Path, name: str) -> tuple[int, Path]:
+    """Create ``folder/.NAME.RANDOM.tmp`` exclusively; return its descriptor and path."""
+    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0) | getattr(os, "O_CLOEXEC", 0)
+    for _ in range(_TEMP_NAME_TRIES):
+        tmp = folder / f".{name}.{secrets.token_hex(8)}.tmp"
+        try:
+            return os.open(tmp, flags, FILE_MODE), tmp
+        except FileExistsError:
+            continue
+    raise FileExistsError(f"no free temporary name for {name} in {folder}")
 
 
 def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
     """Write ``data`` to ``path`` via a temporary file in the same folder and ``os.replace``."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    fd, tmp = _create_temp(path.parent, path.name)
     try:
-        os.fchmod(fd, 0o666 & ~_UMASK)
         with os.fdopen(fd, "wb") as handle:
             handle.write(data)
             handle.flush()

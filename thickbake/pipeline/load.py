@@ -284,14 +284,37 @@ def _part(geom, transform: np.ndarray, where: str, name: str, material: int) -> 
         uv = np.asarray(uv, dtype=np.float64)
         if uv.shape == (len(vertices), 2):
             corner_uv = uv[faces]
-    normals = None
-    if "vertex_normals" in geom._cache:
-        normals = np.asarray(geom.vertex_normals, dtype=np.float64)
-        normals = normals[faces] if normals.shape == vertices.shape else None
+    normals = _file_normals(geom, vertices, faces)
+    if normals is not None:
+        normals = normals[faces]
     tri, normals, order = apply_transform(vertices[faces], normals, transform)
     return Part(name=name, aliases=(name,), triangles=tri[:, order], uv_sets=[corner_uv[:, order]],
                 normals=None if normals is None else normals[:, order], material=material,
                 scale=transform_scale(transform[:3, :3]), mesh=name, vertices=len(vertices))
+
+
+def _file_normals(geom, vertices: np.ndarray, faces: np.ndarray) -> np.ndarray | None:
+    """(m, 3) float64 vertex normals the file (or the in-memory mesh) carries, or None.
+
+    trimesh keeps normals read from a file as its ``vertex_normals`` and otherwise computes them on
+    access, with no public flag telling the two apart.  Computing them is deterministic
+    (``trimesh.geometry.weighted_vertex_normals`` over the public face normals and angles), so normals
+    bit for bit equal to that computation were not given: the bake then builds its own corner normals
+    with creases (:func:`corner_normals`), which trimesh's smooth average would round over.
+    """
+    import trimesh
+
+    if len(faces) == 0:
+        return None
+    normals = np.asarray(geom.vertex_normals, dtype=np.float64)
+    if normals.shape != vertices.shape:
+        return None
+    computed = trimesh.geometry.weighted_vertex_normals(vertex_count=len(geom.vertices), faces=geom.faces,
+                                                        face_normals=geom.face_normals,
+                                                        face_angles=geom.face_angles)
+    if np.array_equal(normals, np.asarray(computed, dtype=np.float64), equal_nan=True):
+        return None
+    return normals
 
 
 # ---------------------------------------------------------------------------- assembly
