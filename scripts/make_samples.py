@@ -24,6 +24,7 @@ import trimesh
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout without installing
 
+from thickbake.geometry import triangle_cross  # noqa: E402
 from thickbake.maps.files import atomic_write_bytes  # noqa: E402
 from thickbake.checks.surfaces import (  # noqa: E402
     Surface,
@@ -87,7 +88,7 @@ def smooth_corner_normals(positions, faces, face_group):
         Unit normal at each face corner.
     """
     tri = positions[faces]
-    area_normal = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])  # twice the area, outward
+    area_normal = triangle_cross(tri)  # twice the area, outward
     groups = int(face_group.max()) + 1
     key = faces * groups + face_group[:, None]
     acc = np.zeros((len(positions) * groups, 3))

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from thickbake.geometry import expand_ranges, pixel_bounds
 from thickbake.pipeline.texels import SurfaceSamples, pixel_triangles, place_samples, rasterise_tile
 
 #: (triangle, texel) candidate pairs clipped at once; ~1 KiB of temporaries each.
@@ -191,11 +192,7 @@ def exact_texel_coverage(asset, width: int, height: int) -> TexelCoverage:
     """
     tri_px, valid, jacobian, world_area = pixel_triangles(asset.triangles, asset.triangle_uv, asset.has_uv, width, height)
     index = np.flatnonzero(valid)
-    lo = np.floor(tri_px[index].min(axis=1)).astype(np.int64)
-    hi = np.ceil(tri_px[index].max(axis=1)).astype(np.int64) - 1
-    lo = np.maximum(lo, 0)
-    hi[:, 0] = np.minimum(hi[:, 0], width - 1)
-    hi[:, 1] = np.minimum(hi[:, 1], height - 1)
+    lo, hi = pixel_bounds(tri_px[index], width, height)
     nx = np.maximum(hi[:, 0] - lo[:, 0] + 1, 0)
     ny = np.maximum(hi[:, 1] - lo[:, 1] + 1, 0)
     count = nx * ny
@@ -223,7 +220,7 @@ def exact_texel_coverage(asset, width: int, height: int) -> TexelCoverage:
         stop = max(int(np.searchsorted(csum, base + CLIP_BATCH, side="right")), start + 1)
         cnt = count[start:stop]
         local = np.repeat(np.arange(start, stop), cnt)
-        k = np.arange(cnt.sum()) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+        k = expand_ranges(cnt)
         col = lo[local, 0] + k % nx[local]
         row = lo[local, 1] + k // nx[local]
         face = index[local]

@@ -35,6 +35,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from thickbake.constants import BIAS_DIAGONAL_FRACTION, EDGE_MARGIN_BIASES, PARITY_STEP_FRACTION
+from thickbake.geometry import double_areas, triangle_cross, unit_normals
+
 
 @dataclass
 class OrientationReport:
@@ -155,8 +158,8 @@ PARITY_MAX_CROSSINGS = 256
 def _parts_inside_out(vertices, faces, label, parts, engine) -> np.ndarray:
     """(parts,) bool: parts whose (consistently wound) normals point into material, by ray parity."""
     tri = vertices[faces]
-    cross = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])
-    area = np.linalg.norm(cross, axis=1)
+    cross = triangle_cross(tri)
+    area = double_areas(tri, cross)
     diagonal = float(np.linalg.norm(vertices.max(axis=0) - vertices.min(axis=0)))
     # the PARITY_VOTES largest faces of every part
     order = np.lexsort((-area, label))
@@ -164,7 +167,7 @@ def _parts_inside_out(vertices, faces, label, parts, engine) -> np.ndarray:
     rank = np.arange(len(order)) - np.repeat(first, np.diff(np.r_[first, len(order)]))
     pick = order[(rank < PARITY_VOTES) & (area[order] > 0)]
     normal = cross[pick] / area[pick, None]
-    step = 1e-4 * diagonal
+    step = PARITY_STEP_FRACTION * diagonal
     origins = tri[pick].mean(axis=1) + step * normal
     direction = normal.astype(np.float32)
     crossings = np.zeros(len(pick), np.int64)
@@ -218,19 +221,19 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
         Scene units.
     """
     from thickbake.pipeline.directions import ray_directions
-    from thickbake.pipeline.texels import EDGE_MARGIN_BIASES, keep_off_edges
+    from thickbake.pipeline.texels import keep_off_edges
     from thickbake.pipeline.origins import inward_origins
 
     rng = np.random.default_rng(seed)
     tri = asset.trace_vertices[asset.trace_faces]
-    cross = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])
-    double_area = np.linalg.norm(cross, axis=1)
-    normal = np.divide(cross, double_area[:, None], out=np.zeros_like(cross), where=double_area[:, None] > 0)
+    cross = triangle_cross(tri)
+    double_area = double_areas(tri, cross)
+    normal = unit_normals(tri, cross, double_area)
     face = rng.choice(len(tri), size=rays, p=double_area / double_area.sum())
     r = rng.random((rays, 2))
     flipped = r.sum(axis=1) > 1
     r[flipped] = 1 - r[flipped]
-    b = asset.diagonal * 1e-4 if bias is None else bias
+    b = asset.diagonal * BIAS_DIAGONAL_FRACTION if bias is None else bias
     # the bake's own origin placement: off triangle edges, and closer to the surface where the solid
     # is thinner than the bias, so a thin rim does not read as a hole
     bary = keep_off_edges(tri, face, np.column_stack([1 - r.sum(axis=1), r]), EDGE_MARGIN_BIASES * b)

@@ -60,6 +60,8 @@ from typing import Sequence
 import numpy as np
 import trimesh
 
+from thickbake.geometry import double_areas
+
 __all__ = [
     "Surface",
     "ProfilePiece",
@@ -664,7 +666,7 @@ def assemble_mesh(surface: Surface, *, material=None, gap: float = ISLAND_GAP) -
                            visual=trimesh.visual.TextureVisuals(uv=unique[:, 1:3].copy(), material=material),
                            process=False)
     tri = vertices[faces]
-    assert np.all(np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1) > 0), \
+    assert np.all(double_areas(tri) > 0), \
         "zero-area triangle"
     return mesh
 

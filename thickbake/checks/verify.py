@@ -73,6 +73,7 @@ from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
+from thickbake.constants import REACH_DIAGONAL_RELATIVE_SLACK
 from thickbake.errors import ThickbakeError
 from thickbake.measures import measure_named
 
@@ -382,7 +383,7 @@ def cauchy_not_applicable(settings, diagonal: float) -> str | None:
         reasons.append(f"{settings.lobe} lobe (needs cosine)")
     if settings.measure != "thickness":
         reasons.append(f"measure {settings.measure} (needs thickness)")
-    if settings.reach < diagonal * (1 - 1e-9):
+    if settings.reach < diagonal * (1 - REACH_DIAGONAL_RELATIVE_SLACK):
         reasons.append(f"reach {settings.reach:g} shorter than the diagonal {diagonal:g} may clip chords")
     return "; ".join(reasons) or None
 

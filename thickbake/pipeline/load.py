@@ -36,14 +36,12 @@ from pathlib import Path
 
 import numpy as np
 
+from thickbake.constants import DEGENERATE_NORMAL_LENGTH, MERGE_TOLERANCE_FRACTION
 from thickbake.errors import ThickbakeError
 from thickbake.pipeline.readers import Material, Part, ReadResult, apply_transform, read_gltf, read_obj, transform_scale
+from thickbake.geometry import double_areas, expand_ranges, triangle_cross, unit_normals, uv_areas
 
 MESH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply", ".off", ".stl")
-#: Vertices closer than this fraction of the bounding-box diagonal are merged for tracing.  Seam
-#: duplicates are usually bit-identical; 1e-7 absorbs float round-off of exporters and transforms
-#: while staying far below any real feature size.
-MERGE_TOLERANCE_FRACTION = 1e-7
 #: Corners whose faces meet at more than this angle keep separate normals when the file carries none.
 #: 45° keeps a box's or a cylinder's edges hard and smooths any sphere with 8+ segments; common
 #: practice, no published source.
@@ -354,7 +352,7 @@ def _assemble(parts: list[Part], materials: list[Material], name: str, path: str
     has_uv = finite[0]
     triangle_uv = np.where(has_uv[:, None, None], uv_sets[0], 0.0)
     if has_uv.any():
-        uv_area = _uv_area(triangle_uv[has_uv])
+        uv_area = uv_areas(triangle_uv[has_uv])
         if not (uv_area.sum() > 0):
             raise ThickbakeError("the UV layout has zero area (all UVs collapse to a point or a line)", path=where,
                                  fix="unwrap the mesh so its UV islands cover part of the 0–1 square")
@@ -377,8 +375,8 @@ def _assemble(parts: list[Part], materials: list[Material], name: str, path: str
     trace_vertices = flat[first]
     trace_faces = inverse.reshape(-1, 3).astype(np.int64)
 
-    cross = np.cross(triangles[:, 1] - triangles[:, 0], triangles[:, 2] - triangles[:, 0])
-    double_area = np.linalg.norm(cross, axis=1)
+    cross = triangle_cross(triangles)
+    double_area = double_areas(triangles, cross)
     # zero-area triangles (all corners on a line, or two welded together) have no inside or outside:
     # they are left out of every topology count, so they cannot pass for holes or flipped faces
     welded = trace_faces
@@ -428,14 +426,14 @@ def _assemble(parts: list[Part], materials: list[Material], name: str, path: str
         warnings.append(f"{int(no_uv.sum())} faces have no UV coordinates (in {shown}): they block rays but get no "
                         "texels — unwrap them if they need a map")
 
-    face_normals = np.divide(cross, double_area[:, None], out=np.zeros_like(cross), where=double_area[:, None] > 0)
+    face_normals = unit_normals(triangles, cross, double_area)
 
     need = ~has_file_normals
     if need.any():
         computed = corner_normals(trace_faces, face_normals, double_area, CREASE_ANGLE_DEG)
         triangle_normals[need] = computed[need]
     lengths = np.linalg.norm(triangle_normals, axis=2, keepdims=True)
-    bad = ~(lengths > 1e-12)
+    bad = ~(lengths > DEGENERATE_NORMAL_LENGTH)
     triangle_normals = np.where(bad, face_normals[:, None, :], triangle_normals / np.where(bad, 1.0, lengths))
 
     report = MeshReport(
@@ -501,13 +499,6 @@ def _check_representable(lo: np.ndarray, hi: np.ndarray, diagonal: float, where:
                              fix="move the asset near the origin in your modelling tool and export again")
 
 
-def _uv_area(uv: np.ndarray) -> np.ndarray:
-    """(f,) absolute UV-space area of (f, 3, 2) UV triangles."""
-    e1 = uv[:, 1] - uv[:, 0]
-    e2 = uv[:, 2] - uv[:, 0]
-    return np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]) / 2
-
-
 def _uv_outside_fraction(uv: np.ndarray, area: np.ndarray) -> float:
     """Share of UV area (by triangle centroid) outside [0, 1]²."""
     centroid = uv.mean(axis=1)
@@ -566,7 +557,7 @@ def corner_normals(faces: np.ndarray, face_normals: np.ndarray, double_area: np.
     # pair every corner with every face around its vertex: sum(size²) pairs
     reps = sizes[group_of_sorted]
     left = np.repeat(np.arange(len(order)), reps)                 # index into sorted corners
-    offset_in_group = np.arange(len(left)) - np.repeat(np.cumsum(reps) - reps, reps)
+    offset_in_group = expand_ranges(reps)
     right = starts[group_of_sorted[left]] + offset_in_group       # sorted index of the neighbour
     own_face = corner_face[order[left]]
     other_face = corner_face[order[right]]

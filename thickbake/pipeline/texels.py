@@ -29,6 +29,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from thickbake.constants import DEGENERATE_NORMAL_LENGTH, EDGE_MARGIN_BIASES
+from thickbake.geometry import double_areas, expand_ranges, pixel_bounds, uv_areas
+
 #: Candidate (triangle, texel) pairs enumerated at once; bounds the rasteriser's working memory
 #: (about 200 bytes each with supersampling temporaries).
 CANDIDATE_BATCH = 1 << 20
@@ -36,10 +39,6 @@ CANDIDATE_BATCH = 1 << 20
 #: functions are exact integers: a texel centre on an edge or a vertex shared by several triangles
 #: goes to exactly one of them.  Pixel coordinates up to 32768·256 = 2^23 keep products below 2^49.
 SUBPIXEL = 256
-#: Samples are kept this many biases away from the edges of their triangle (see keep_off_edges):
-#: enough for the inward bias step not to cross the neighbouring face at edges sharper than 90°,
-#: down to wedges of atan(1/4) ≈ 14°; thinner places are handled by origins.inward_origins.
-EDGE_MARGIN_BIASES = 4.0
 
 
 @dataclass
@@ -108,10 +107,8 @@ def pixel_triangles(triangles: np.ndarray, triangle_uv: np.ndarray, has_uv: np.n
         Triangle areas, scene units².
     """
     tri_px = uv_to_pixels(triangle_uv, width, height)
-    e1 = tri_px[:, 1] - tri_px[:, 0]
-    e2 = tri_px[:, 2] - tri_px[:, 0]
-    uv_px_area = np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]) / 2
-    world_area = np.linalg.norm(np.cross(triangles[:, 1] - triangles[:, 0], triangles[:, 2] - triangles[:, 0]), axis=1) / 2
+    uv_px_area = uv_areas(tri_px)
+    world_area = double_areas(triangles) / 2
     valid = has_uv & (uv_px_area > 0)
     jacobian = np.divide(world_area, uv_px_area, out=np.zeros_like(world_area), where=uv_px_area > 0)
     return tri_px, valid, jacobian, world_area
@@ -138,11 +135,7 @@ def tile_buckets(tri_px: np.ndarray, valid: np.ndarray, width: int, height: int,
     members : (m,) int64
         Triangle indices.
     """
-    lo = np.floor(tri_px.min(axis=1)).astype(np.int64)
-    hi = np.ceil(tri_px.max(axis=1)).astype(np.int64) - 1
-    lo = np.maximum(lo, 0)
-    hi[:, 0] = np.minimum(hi[:, 0], width - 1)
-    hi[:, 1] = np.minimum(hi[:, 1], height - 1)
+    lo, hi = pixel_bounds(tri_px, width, height)
     ok = valid & (hi[:, 0] >= lo[:, 0]) & (hi[:, 1] >= lo[:, 1])
     idx = np.flatnonzero(ok)
     t_lo = lo[idx] // tile
@@ -151,7 +144,7 @@ def tile_buckets(tri_px: np.ndarray, valid: np.ndarray, width: int, height: int,
     ny = t_hi[:, 1] - t_lo[:, 1] + 1
     count = nx * ny
     tri = np.repeat(idx, count)
-    k = np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
+    k = expand_ranges(count)
     nx_r = np.repeat(nx, count)
     tcol = np.repeat(t_lo[:, 0], count) + k % nx_r
     trow = np.repeat(t_lo[:, 1], count) + k // nx_r
@@ -225,8 +218,7 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
     a, b, c, double_area = a[keep], b[keep], c[keep], double_area[keep]
     ia, ib, ic, idouble_area, tie = ia[keep], ib[keep], ic[keep], idouble_area[keep], tie[keep]
 
-    lo = np.floor(tri_px.min(axis=1)).astype(np.int64)
-    hi = np.ceil(tri_px.max(axis=1)).astype(np.int64) - 1
+    lo, hi = pixel_bounds(tri_px, width, height)
     cx0 = np.maximum(lo[:, 0], x0)
     cy0 = np.maximum(lo[:, 1], y0)
     cx1 = np.minimum(hi[:, 0], x1 - 1)
@@ -247,7 +239,7 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
         if cnt.sum() == 0:
             continue
         t = np.repeat(np.arange(lo_t, hi_t), cnt)
-        k = np.arange(cnt.sum()) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+        k = expand_ranges(cnt)
         col = cx0[t] + k % nx[t]
         row = cy0[t] + k // nx[t]
         # square-overlap test: max of each edge function over the texel square must be >= 0
@@ -402,7 +394,7 @@ def keep_off_edges(triangles: np.ndarray, face: np.ndarray, bary: np.ndarray, ma
         return bary
     tri = triangles[face]
     opposite = tri[:, [2, 0, 1]] - tri[:, [1, 2, 0]]                       # edge opposite corner i
-    double_area = np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
+    double_area = double_areas(tri)
     length = np.linalg.norm(opposite, axis=2)
     height = double_area[:, None] / np.where(length > 0, length, np.inf)
     need = np.minimum(margin / np.where(height > 0, height, 1e-300), 1.0 / 3.0)  # bary required per edge
@@ -459,7 +451,7 @@ def surface_points(triangles: np.ndarray, triangle_normals: np.ndarray, face_nor
     flip = np.einsum("ij,ij->i", normals, fn) < 0
     normals[flip] *= -1
     length = np.linalg.norm(normals, axis=1, keepdims=True)
-    bad = ~(length[:, 0] > 1e-12)
+    bad = ~(length[:, 0] > DEGENERATE_NORMAL_LENGTH)
     normals = np.where(bad[:, None], fn, normals / np.where(bad[:, None], 1.0, length))
     return positions, normals
 
