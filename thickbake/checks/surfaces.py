@@ -293,6 +293,35 @@ def revolve(pieces: Sequence[ProfilePiece], segments: int, *, closed: bool = Fal
     if n < 3:
         raise ValueError(f"segments must be at least 3, got {n}")
     pieces = list(pieces)
+    profile = _profile(pieces, closed)
+    positions, cos_t, sin_t = _ring_positions(profile, n)
+    faces, cj, ci, fj, fi = _ring_faces(profile, n)
+    corner_normals = _piece_normals(pieces, profile, cj, fj, ci, cos_t, sin_t, n)
+    corner_uv, face_island = _island_uvs(pieces, profile, cj, fj, ci, fi, cos_t, sin_t, n)
+    rho, seg_piece = profile.rho, profile.seg_piece
+    sag = np.array([p.sag for p in pieces])[seg_piece]
+    rho_max = np.maximum(rho[:-1], rho[1:])
+    facet_error = float(np.max(rho_max * (1.0 - math.cos(math.pi / n)) + sag))
+    return Surface(positions, faces.astype(np.int64), corner_normals, corner_uv,
+                   face_island.astype(np.int64), facet_error)
+
+
+@dataclass
+class _Profile:
+    """A meridian profile unwrapped into one polyline (see :func:`revolve`)."""
+
+    rho: np.ndarray        # (S + 1,) radius of each unwrapped point
+    z: np.ndarray          # (S + 1,) height of each unwrapped point
+    seg_piece: np.ndarray  # (S,) piece of each segment
+    seg_local: np.ndarray  # (S,) index of each segment within its piece
+    wrap: np.ndarray       # (S + 1,) unwrapped point -> stored point
+    pole: np.ndarray       # (stored points,) points on the axis
+    n_seg: int
+    n_pts: int
+
+
+def _profile(pieces: list, closed: bool) -> _Profile:
+    """Join the pieces into one validated polyline; find the poles and the stored points."""
     rho_parts = [pieces[0].rho.astype(np.float64)]
     z_parts = [pieces[0].z.astype(np.float64)]
     seg_piece, seg_local = [], []
@@ -328,8 +357,12 @@ def revolve(pieces: Sequence[ProfilePiece], segments: int, *, closed: bool = Fal
     pole = rho[:n_pts] == 0.0
     if np.any(pole[1:-1]) or (closed and np.any(pole)):
         raise ValueError("only the two ends of an open profile may lie on the axis")
+    return _Profile(rho, z, seg_piece, seg_local, wrap, pole, n_seg, n_pts)
 
-    # welded positions: one vertex per pole, n per ring
+
+def _ring_positions(profile: _Profile, n: int):
+    """(v, 3) welded positions, one vertex per pole and ``n`` per ring, and the ring's cos/sin of phi."""
+    rho, z, pole, n_pts = profile.rho, profile.z, profile.pole, profile.n_pts
     count = np.where(pole, 1, n)
     offset = np.cumsum(count) - count
     cos_t = np.cos(2.0 * np.pi * np.arange(n) / n)
@@ -337,8 +370,14 @@ def revolve(pieces: Sequence[ProfilePiece], segments: int, *, closed: bool = Fal
     pt = np.repeat(np.arange(n_pts), count)
     col = np.arange(int(count.sum())) - offset[pt]
     positions = np.column_stack((rho[pt] * cos_t[col], rho[pt] * sin_t[col], z[pt])) + 0.0
+    return positions, cos_t, sin_t
 
-    # triangles: corners as (unwrapped point, unwrapped column)
+
+def _ring_faces(profile: _Profile, n: int):
+    """(f, 3) faces over the welded positions, and each corner's (point, column) and face's (segment, column)."""
+    n_seg, wrap, pole = profile.n_seg, profile.wrap, profile.pole
+    count = np.where(pole, 1, n)
+    offset = np.cumsum(count) - count
     jj, ii = np.meshgrid(np.arange(n_seg), np.arange(n), indexing="ij")
     jj, ii = jj.ravel(), ii.ravel()
     cj = np.stack((np.stack((jj, jj, jj + 1), 1), np.stack((jj, jj + 1, jj + 1), 1)), 1)  # (q, 2, 3)
@@ -349,8 +388,12 @@ def revolve(pieces: Sequence[ProfilePiece], segments: int, *, closed: bool = Fal
     fi = np.broadcast_to(ii[:, None], keep.shape)[keep]
     pw = wrap[cj]
     faces = offset[pw] + np.where(pole[pw], 0, ci % n)
+    return faces, cj, ci, fj, fi
 
-    # normals: each face takes its own piece's normal at the corner (hard edges between pieces)
+
+def _piece_normals(pieces: list, profile: _Profile, cj, fj, ci, cos_t, sin_t, n: int) -> np.ndarray:
+    """(f, 3, 3) corner normals: each face takes its own piece's normal at the corner (hard edges between pieces)."""
+    pole, wrap, seg_piece, seg_local = profile.pole, profile.wrap, profile.seg_piece, profile.seg_local
     table = np.concatenate([p.normal for p in pieces]).astype(np.float64)
     piece_start = np.cumsum([0] + [len(p.rho) for p in pieces[:-1]])
     global_start = np.cumsum([0] + [len(p.rho) - 1 for p in pieces[:-1]])
@@ -362,8 +405,13 @@ def revolve(pieces: Sequence[ProfilePiece], segments: int, *, closed: bool = Fal
     nrm = table[piece_start[k][:, None] + local]  # (f, 3, 2)
     cc, ss = cos_t[ci % n], sin_t[ci % n]
     corner_normals = np.stack((nrm[..., 0] * cc, nrm[..., 0] * ss, nrm[..., 1]), -1) + 0.0
+    return corner_normals
 
-    # islands and UVs
+
+def _island_uvs(pieces: list, profile: _Profile, cj, fj, ci, fi, cos_t, sin_t, n: int):
+    """(f, 3, 2) corner UVs in world units and (f,) island of each face (see :func:`revolve`)."""
+    rho, z, pole, wrap, seg_piece = profile.rho, profile.z, profile.pole, profile.wrap, profile.seg_piece
+    cc, ss = cos_t[ci % n], sin_t[ci % n]
     labels = [p.island for p in pieces]
     run_of_piece = np.cumsum([0] + [int(labels[i] != labels[i - 1]) for i in range(1, len(pieces))])
     n_runs = int(run_of_piece[-1]) + 1
@@ -387,12 +435,7 @@ def revolve(pieces: Sequence[ProfilePiece], segments: int, *, closed: bool = Fal
     run_base = np.cumsum(np.concatenate(([0], run_splits[:-1])))
     rf = run_of_seg[fj]
     face_island = run_base[rf] + (fi * run_splits[rf]) // n
-
-    sag = np.array([p.sag for p in pieces])[seg_piece]
-    rho_max = np.maximum(rho[:-1], rho[1:])
-    facet_error = float(np.max(rho_max * (1.0 - math.cos(math.pi / n)) + sag))
-    return Surface(positions, faces.astype(np.int64), corner_normals, corner_uv,
-                   face_island.astype(np.int64), facet_error)
+    return corner_uv, face_island
 
 
 def sphere_surface(radius: float, segments: int, *, inward: bool = False, band_islands: int = 2,

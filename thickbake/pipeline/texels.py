@@ -215,14 +215,52 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
     a, b, c, double_area, _ = _edge_setup(tri_px)
     keep = (double_area > 0) & (idouble_area > 0)
     tri_px, tri_index, jacobian = tri_px[keep], tri_index[keep], jacobian[keep]
-    a, b, c, double_area = a[keep], b[keep], c[keep], double_area[keep]
-    ia, ib, ic, idouble_area, tie = ia[keep], ib[keep], ic[keep], idouble_area[keep], tie[keep]
+    float_edges = (a[keep], b[keep], c[keep], double_area[keep])
+    fixed_edges = (ia[keep], ib[keep], ic[keep], idouble_area[keep], tie[keep])
 
     lo, hi = pixel_bounds(tri_px, width, height)
     cx0 = np.maximum(lo[:, 0], x0)
     cy0 = np.maximum(lo[:, 1], y0)
     cx1 = np.minimum(hi[:, 0], x1 - 1)
     cy1 = np.minimum(hi[:, 1], y1 - 1)
+    k2 = supersample * supersample
+    claims, touched = _claims_and_touches(float_edges, fixed_edges, cx0, cy0, cx1, cy1, width, supersample)
+    c_texel, c_sub, c_tri, c_bary = claims
+    c_area = jacobian[c_tri] / k2
+    overlapped = _overlapped_texels(c_texel, c_sub, k2)
+    b_texel, b_tri, b_bary = _border_samples(tri_px, float_edges, touched, c_texel, width)
+
+    texel = np.concatenate([c_texel, b_texel])
+    local = np.concatenate([c_tri, b_tri])
+    sub = np.concatenate([c_sub, np.zeros(len(b_texel), np.int64)])
+    bary = np.concatenate([c_bary, b_bary])
+    area = np.concatenate([c_area, np.zeros(len(b_texel))])
+    face = tri_index[local]
+    order = np.lexsort((face, sub, texel))
+    samples = SurfaceSamples(texel[order], face[order], bary[order], sub[order], area[order])
+    return samples, overlapped
+
+
+def _claims_and_touches(float_edges, fixed_edges, cx0, cy0, cx1, cy1, width: int, supersample: int):
+    """Centre claims at the sub-positions, and every (texel, triangle) pair whose square touches.
+
+    Parameters
+    ----------
+    float_edges : tuple
+        ``a, b, c`` (t, 3) and the double area (t,) of :func:`_edge_setup` on pixel coordinates.
+    fixed_edges : tuple
+        ``a, b, c``, double area and tie flags of :func:`_edge_setup` on the fixed-point grid.
+    cx0, cy0, cx1, cy1 : (t,) int64
+        Inclusive texel column and row ranges of each triangle within the tile.
+    width, supersample : int
+
+    Returns
+    -------
+    claims : tuple of (n,) int64 texel, (n,) int64 sub-position, (n,) int64 local triangle, (n, 3) bary
+    touched : tuple of (m,) int64 texel, (m,) int64 local triangle
+    """
+    a, b, c, _ = float_edges
+    ia, ib, ic, idouble_area, tie = fixed_edges
     nx = np.maximum(cx1 - cx0 + 1, 0)
     ny = np.maximum(cy1 - cy0 + 1, 0)
     count = nx * ny
@@ -268,45 +306,48 @@ def rasterise_tile(tri_px: np.ndarray, tri_index: np.ndarray, jacobian: np.ndarr
     else:
         c_texel = c_sub = c_tri = np.zeros(0, np.int64)
         c_bary = np.zeros((0, 3))
-    c_area = jacobian[c_tri] / k2
-
-    # overlap: a (texel, sub) claimed more than once
-    overlapped = 0
-    if len(c_texel):
-        ts = c_texel * k2 + c_sub
-        uniq_ts, ts_counts = np.unique(ts, return_counts=True)
-        overlapped = len(np.unique(uniq_ts[ts_counts > 1] // k2))
-
-    # border texels: touched but with no claim
     if touched:
         t_texel = np.concatenate([x[0] for x in touched])
         t_tri = np.concatenate([x[1] for x in touched])
     else:
         t_texel = t_tri = np.zeros(0, np.int64)
+    return (c_texel, c_sub, c_tri, c_bary), (t_texel, t_tri)
+
+
+def _overlapped_texels(c_texel: np.ndarray, c_sub: np.ndarray, k2: int) -> int:
+    """Texels with a (texel, sub-position) claimed more than once: overlapping UVs."""
+    if not len(c_texel):
+        return 0
+    ts = c_texel * k2 + c_sub
+    uniq_ts, ts_counts = np.unique(ts, return_counts=True)
+    return len(np.unique(uniq_ts[ts_counts > 1] // k2))
+
+
+def _border_samples(tri_px: np.ndarray, float_edges, touched, c_texel: np.ndarray, width: int):
+    """One sample for each touched texel without a centre claim: its centre clamped onto the nearest triangle.
+
+    Returns
+    -------
+    texel, tri : (b,) int64
+        Border texels and the local triangle each samples.
+    bary : (b, 3) float64
+    """
+    a, b, c, double_area = float_edges
+    t_texel, t_tri = touched
     border = ~np.isin(t_texel, c_texel)
     t_texel, t_tri = t_texel[border], t_tri[border]
-    b_texel = b_tri = np.zeros(0, np.int64)
-    b_bary = np.zeros((0, 3))
-    if len(t_texel):
-        centre = np.stack([t_texel % width + 0.5, t_texel // width + 0.5], axis=1)
-        closest, dist2 = closest_point_on_triangle_2d(tri_px[t_tri], centre)
-        order = np.lexsort((t_tri, dist2, t_texel))
-        t_texel, t_tri, closest = t_texel[order], t_tri[order], closest[order]
-        first = np.r_[True, t_texel[1:] != t_texel[:-1]]
-        b_texel, b_tri, closest = t_texel[first], t_tri[first], closest[first]
-        e = a[b_tri] * closest[:, :1] + b[b_tri] * closest[:, 1:] + c[b_tri]
-        b_bary = np.clip(e / double_area[b_tri, None], 0.0, None)
-        b_bary /= b_bary.sum(axis=1, keepdims=True)
-
-    texel = np.concatenate([c_texel, b_texel])
-    local = np.concatenate([c_tri, b_tri])
-    sub = np.concatenate([c_sub, np.zeros(len(b_texel), np.int64)])
-    bary = np.concatenate([c_bary, b_bary])
-    area = np.concatenate([c_area, np.zeros(len(b_texel))])
-    face = tri_index[local]
-    order = np.lexsort((face, sub, texel))
-    samples = SurfaceSamples(texel[order], face[order], bary[order], sub[order], area[order])
-    return samples, overlapped
+    if not len(t_texel):
+        return np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 3))
+    centre = np.stack([t_texel % width + 0.5, t_texel // width + 0.5], axis=1)
+    closest, dist2 = closest_point_on_triangle_2d(tri_px[t_tri], centre)
+    order = np.lexsort((t_tri, dist2, t_texel))
+    t_texel, t_tri, closest = t_texel[order], t_tri[order], closest[order]
+    first = np.r_[True, t_texel[1:] != t_texel[:-1]]
+    b_texel, b_tri, closest = t_texel[first], t_tri[first], closest[first]
+    e = a[b_tri] * closest[:, :1] + b[b_tri] * closest[:, 1:] + c[b_tri]
+    b_bary = np.clip(e / double_area[b_tri, None], 0.0, None)
+    b_bary /= b_bary.sum(axis=1, keepdims=True)
+    return b_texel, b_tri, b_bary
 
 
 def _batches(count: np.ndarray, budget: int):
