@@ -24,27 +24,27 @@ def sphere():
 
 
 def test_adaptive_meets_target_on_sphere(sphere):
-    # sphere R = 1, cosine lobe: chord 2R cosθ has mean 4R/3 and per-ray σ = R·√(2 − 16/9) = 0.471
-    # (chord ℓ = 2R cosθ has density ℓ/(2R²) on [0, 2R] under the cosine lobe, so E[ℓ²] = 2R²).  A standard error of E needs n ≥ (σ/E)² rays
-    # by the independent-sampling formula the stopping rule uses; batches double from 16, so with
-    # E = 0.05 (n ≥ 89) every texel stops at 128 of the 256-ray cap.
-    target, cap = 0.05, 256
+    # sphere R = 1, cosine lobe, closed form 4R/3 (chord 2R cosθ averaged over the cosine lobe).
+    # A texel stops once its replicate standard error and its 4x4 block's pooled one are both at most
+    # E, so every texel that stopped before the cap reports σ̂ <= E; since the error bars are
+    # calibrated (tests/test_error_bars.py), the RMS of the actual errors is then at most E, up to the
+    # sampling spread of an RMS over n ≈ 2,700 texels (relative sd sqrt(1/(2n)) ≈ 1.4%; 4 sd = 6%).
+    target, cap = 0.03, 256
     adaptive = thickbake.bake(sphere.mesh, size=64, rays=cap, target_error=target)
     rays = adaptive.rays[adaptive.covered]
-    sigma = math.sqrt(2 - 16 / 9)
-    assert rays.min() >= (sigma / target) ** 2
-    assert (rays == 128).mean() > 0.99
-    # texels that stopped early report a standard error within the target ...
     early = rays < cap
+    assert early.mean() > 0.99
     assert (adaptive.stderr[adaptive.covered][early] <= target).all()
-    # ... and their actual error against the closed form meets it (RMS ≤ E; Sobol does far better)
     err = adaptive.values[adaptive.covered] - 4 / 3
-    assert math.sqrt(np.mean(err ** 2)) <= target
-    assert adaptive.info["rays_saved"] == pytest.approx(0.5 * (adaptive.info["rays_saved"] + adaptive.info["rays_traced"]), rel=0.02)
-    # the rays are a prefix of the same low-discrepancy sequence: identical to a fixed 128-ray bake
-    fixed = thickbake.bake(sphere.mesh, size=64, rays=128)
-    same = rays == 128
-    assert np.array_equal(fixed.values[fixed.covered][same], adaptive.values[adaptive.covered][same])
+    assert math.sqrt(np.mean(err ** 2)) <= target * 1.06
+    assert adaptive.info["rays_saved"] + adaptive.info["rays_traced"] == adaptive.covered.sum() * cap
+    assert adaptive.info["rays_saved"] > 0.5 * adaptive.info["rays_traced"]
+    # the rays are a prefix of the same replicated low-discrepancy sets: a texel that stopped at n rays
+    # is identical to a fixed n-ray bake there
+    for n in np.unique(rays):
+        fixed = thickbake.bake(sphere.mesh, size=64, rays=int(n))
+        same = rays == n
+        assert np.array_equal(fixed.values[fixed.covered][same], adaptive.values[adaptive.covered][same])
 
 
 def test_adaptive_spends_more_rays_on_thick_parts():

@@ -135,7 +135,9 @@ def test_bias_correction_on_the_hemisphere():
 def test_standard_error_map_is_calibrated():
     # With independent random directions a texel's error (mean − expected) divided by its reported
     # standard error is a Student-like statistic: the share of texels within ±1.96 standard errors is
-    # what the same statistic gives on simulated rays.  The reference share is simulated here with
+    # what the same statistic gives on simulated rays.  The reported standard error is the spread of
+    # R = 4 replicate means (rays j ≡ r mod 4; randomised-QMC replicates, Owen 1997), so the simulation
+    # forms the same statistic: sample standard deviation of the 4 replicate means over √4.  The reference share is simulated here with
     # numpy from the exact per-ray law on the sphere (cosine lobe: cosθ = √u, value offset_chord), not
     # with the package.  Texels are independent (each has its own random stream), so the bake's share has
     # binomial spread √(p(1−p)/m) (REFERENCES.md, "Error bars"); the facet error (≤ 2δ per texel, see
@@ -156,7 +158,8 @@ def test_standard_error_map_is_calibrated():
     sims = 100_000
     draws = offset_chord(np.sqrt(np.random.default_rng(11).random((sims, rays))), 1.0, bias)
     sim_err = draws.mean(axis=1) - expected
-    sim_se = draws.std(axis=1, ddof=1) / math.sqrt(rays)
+    replicate_means = draws.reshape(sims, rays // 4, 4).mean(axis=1)
+    sim_se = replicate_means.std(axis=1, ddof=1) / math.sqrt(4)
     shift = 2 * sphere.facet_error
     p_low = float(np.mean(np.abs(sim_err) + shift <= 1.96 * sim_se))
     p_high = float(np.mean(np.abs(sim_err) - shift <= 1.96 * sim_se))

@@ -4,14 +4,23 @@ The lobes themselves (cosine-weighted, uniform; each a sample/pdf/inverse trio) 
 :mod:`thickbake.lobes`; this module draws their variates reproducibly and turns them into world-space
 ray directions around each sample's inward normal.
 
-Reproducibility
----------------
-Every sample (texel, sub-position, triangle) has a 64-bit key.  The base set is the first n points of
-one scrambled Sobol sequence (scipy.stats.qmc.Sobol, seeded by ``seed``); each sample adds its own
-Cranley–Patterson offset, a hash of (seed, key), modulo 1 (Cranley & Patterson, SIAM J. Numer. Anal.
-13:904, 1976), which keeps the set's low discrepancy and decorrelates neighbouring texels.  Nothing
-depends on chunking, thread count or order.  ``sequence="random"`` instead hashes (seed, key, ray
-index) into independent uniform variates — for comparisons only.
+Randomised quasi-Monte Carlo and reproducibility
+-------------------------------------------------
+Every sample (texel, sub-position, triangle) has a 64-bit key.  The base set is one scrambled Sobol
+sequence (scipy.stats.qmc.Sobol, seeded by ``seed``).  A sample's rays form R = :data:`REPLICATES`
+independent *replicates*: ray j belongs to replicate r = j mod R and uses base point i = j div R,
+shifted by the replicate's own Cranley–Patterson offset, a hash of (seed, key, r), modulo 1
+(Cranley & Patterson, SIAM J. Numer. Anal. 13:904, 1976).  Each replicate is thus a randomly shifted
+copy of the first n/R points of the net: every point of it is uniform on [0, 1)², so its mean is an
+unbiased estimate, and the R replicate means are independent and identically distributed given the
+base set.  Their spread is an honest standard error of the estimator actually used (randomised QMC:
+Owen, "Scrambled net variance for integrals of smooth functions", Ann. Statist. 25(4):1541, 1997;
+L'Ecuyer & Lemieux, "Recent advances in randomized quasi-Monte Carlo methods", in *Modeling
+Uncertainty*, Kluwer 2002, random-shift replicates), whereas the independent-sampling formula over
+the n rays overstates a net's error several-fold.  Ray ranges that start and stop on multiples of R
+cover the same prefix of every replicate, so adaptive batches stay nested.  Nothing depends on
+chunking, thread count or order.  ``sequence="random"`` instead hashes (seed, key, ray index) into
+independent uniform variates — for comparisons only; its rays are grouped into replicates the same way.
 """
 
 from __future__ import annotations
@@ -73,7 +82,39 @@ def base_points(count: int, seed: int) -> np.ndarray:
     return _sobol_cached(m, int(seed))[:count]
 
 
-def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequence: str):
+#: Independent randomisations (replicates) per sample.  Four keep three degrees of freedom for the
+#: standard error while each replicate still holds a quarter of the rays, enough for the net to pay off
+#: (at 16 rays a replicate is a 4-point net); intervals then use Student-t quantiles with R − 1 = 3
+#: degrees of freedom (see :func:`thickbake.pipeline.measures.coverage_factor`).
+REPLICATES = 4
+
+
+def replicate_count(rays: int) -> int:
+    """Replicates R for a budget of ``rays`` per sample: :data:`REPLICATES`, or ``rays`` when fewer."""
+    return max(1, min(REPLICATES, int(rays)))
+
+
+def rays_per_sample(rays: int) -> int:
+    """Rays actually traced per sample for a request of ``rays``: rounded up to a multiple of R.
+
+    Every replicate gets the same number of points (⌈rays / R⌉), so the R replicate means are
+    identically distributed; ``--rays 50`` therefore traces 52.  Powers of two ≥ 4 are unchanged and
+    give every replicate a balanced power-of-two net.
+    """
+    r = replicate_count(rays)
+    return -(-int(rays) // r) * r
+
+
+def replicate_offsets(seed: int, keys: np.ndarray, replicates: int) -> np.ndarray:
+    """(n, R, 2) float64 Cranley–Patterson offsets in [0, 1), one per (seed, key, replicate)."""
+    rep = splitmix64(np.arange(replicates, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15) + np.uint64(0x51ED))
+    with np.errstate(over="ignore"):
+        rep_keys = splitmix64(keys.astype(np.uint64)[:, None] ^ rep[None, :])
+    return hash_uniform2(seed, rep_keys.reshape(-1)).reshape(len(keys), replicates, 2)
+
+
+def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequence: str,
+             replicates: int = REPLICATES):
     """Uniform variates for rays ``ray_start … ray_stop−1`` of each sample.
 
     Parameters
@@ -82,8 +123,11 @@ def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequenc
     keys : (n,) uint64
         Sample keys from :func:`sample_keys`.
     ray_start, ray_stop : int
-        Range of ray indices within each sample's sequence (k = stop − start).
+        Range of ray indices within each sample's sequence (k = stop − start).  Ray j belongs to
+        replicate j mod R and is point j div R of that replicate's shifted net.
     sequence : {"sobol", "random"}
+    replicates : int
+        R, independent randomisations per sample (:func:`replicate_count`).
 
     Returns
     -------
@@ -92,11 +136,14 @@ def variates(seed: int, keys: np.ndarray, ray_start: int, ray_stop: int, sequenc
     """
     k = ray_stop - ray_start
     if sequence == "sobol":
-        base = base_points(ray_stop, seed)[ray_start:ray_stop].astype(np.float32)
-        offset = hash_uniform2(seed, keys).astype(np.float32)
+        ray = np.arange(ray_start, ray_stop)
+        point, rep = ray // replicates, ray % replicates
+        base = base_points(int(point[-1]) + 1 if k else 0, seed)[point].astype(np.float32)       # (k, 2)
+        offset = replicate_offsets(seed, keys, replicates).astype(np.float32)                  # (n, R, 2)
         out = []
         for d in range(2):
-            u = np.add(offset[:, d:d + 1], base[None, :, d])
+            u = np.take(np.ascontiguousarray(offset[:, :, d]), rep, axis=1)                     # (n, k)
+            u += base[None, :, d]
             u -= u >= 1.0
             out.append(u)
         return out[0], out[1]

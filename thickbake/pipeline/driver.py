@@ -21,7 +21,7 @@ from typing import Callable
 import numpy as np
 
 from thickbake.version import __version__
-from thickbake.pipeline.directions import ray_directions, sample_keys, variates
+from thickbake.pipeline.directions import ray_directions, rays_per_sample as traced_rays, replicate_count, sample_keys, variates
 from thickbake.maps.encode import normalise, quantise
 from thickbake.errors import ThickbakeError
 from thickbake.measures import measure_named
@@ -40,9 +40,21 @@ from thickbake.pipeline.transfer import Transfer
 from thickbake.pipeline.texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
 
 #: First batch of rays per sample in adaptive mode; later batches double the count, so every sample
-#: ends on a power-of-two prefix of its low-discrepancy sequence.  16 rays give a usable variance
-#: estimate (its relative standard error is about √(2/15) ≈ 37% for near-normal values).
-ADAPTIVE_FIRST_BATCH = 16
+#: ends on a power-of-two prefix of each replicate's low-discrepancy sequence.  8 rays are two points
+#: per replicate (R = 4): the fewest that still give every replicate a stratified pair.  The standard
+#: error always has R − 1 = 3 degrees of freedom whatever the batch, so a larger first batch would not
+#: steady it; the pooling below does.
+ADAPTIVE_FIRST_BATCH = 8
+#: Side, in texels, of the aligned blocks over which adaptive sampling pools its variance estimates.
+#: A replicate standard error has only 3 degrees of freedom, and on a skewed integrand (a thin wall,
+#: where a few grazing rays carry long chords) a sample whose first rays all miss the tail reports a
+#: tiny spread and would stop with a large error.  Neighbouring samples see nearly the same integrand
+#: with independent randomisations, so the mean of their squared standard errors estimates the local
+#: variance with many more degrees of freedom (pooled variance, as in a one-way analysis of variance).
+#: A sample goes on while its own *or* its block's pooled standard error exceeds the target.  Blocks
+#: are aligned to multiples of 4 texels, and tiles are aligned powers of two ≥ 16, so a block never
+#: straddles tiles and the map does not depend on the tiling.
+ADAPTIVE_POOL_BLOCK = 4
 #: Rays generated and traced per engine call.  Small enough that the direction arrays of one call
 #: (~12 bytes a ray each) stay in the core's L2 cache while numpy builds them, large enough that the
 #: per-call overhead is negligible.
@@ -405,7 +417,7 @@ def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engi
     """The shared context of one map and its tiles: (context, tiles, starts, members) of :func:`tile_buckets`."""
     width, height = s.size
     tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, group.triangle_uv, group.faces, width, height)
-    rays_per_sample = 1 if s.cone == 0 else s.rays
+    rays_per_sample = 1 if s.cone == 0 else traced_rays(s.rays)
     tile = _tile_side(r.chunk_rays, rays_per_sample, s.supersample, width, height)
     tiles, starts, members = tile_buckets(tri_px, valid, width, height, tile)
     ctx = _Context(
@@ -626,7 +638,7 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray)
     flat = ~(np.abs(face_normals).sum(axis=1) > 0)
     face_normals = np.where(flat[:, None], normals, face_normals)
     axis = (-normals).astype(np.float32)
-    moments = Moments(n)
+    moments = Moments(n, replicate_count(ctx.rays_per_sample))
     engine_of_sample = ctx.engine_of_face[samples.face]
     for which in np.unique(engine_of_sample):
         engine = ctx.engines[int(which)]
@@ -636,9 +648,10 @@ def _bake_tile(ctx: _Context, tile_row: int, tile_col: int, members: np.ndarray)
         tally["origins_moved"] += int((sample_bias < s.bias).sum())
         tally["origins_outside"] += unresolved
         inward = (-face_normals[mine]).astype(np.float32)
-        _trace_samples(ctx, engine, mine, keys[mine], origins, sample_bias, inward, axis[mine], moments, tally)
-    texels, mean, stderr, area, claims, rays = texel_reduce(samples.texel, moments.mean(), moments.stderr(),
-                                                            samples.area, moments.count)
+        _trace_samples(ctx, engine, mine, keys[mine], origins, sample_bias, inward, axis[mine], moments, tally,
+                       samples.texel[mine])
+    texels, mean, stderr, area, claims, rays = texel_reduce(samples.texel, moments.replicate_means(), samples.area,
+                                                            moments.count)
     rows, cols = texels // width, texels % width
     ctx.values[rows, cols] = mean
     ctx.stderr[rows, cols] = stderr
@@ -662,7 +675,7 @@ def _record_projection(ctx: _Context, texel: np.ndarray, found: np.ndarray, offs
 
 def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np.ndarray, origins: np.ndarray,
                    sample_bias: np.ndarray, inward: np.ndarray, axis: np.ndarray, moments: Moments,
-                   tally: dict) -> None:
+                   tally: dict, texel: np.ndarray) -> None:
     """Trace the rays of some samples against one engine in engine-sized calls (batches of doubling
     size when adaptive) and add their values to ``moments``.
 
@@ -682,18 +695,27 @@ def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np
         Unit inward shading normal of each sample (the lobe axis).
     tally : dict
         ``rays``, ``misses`` (no hit within reach) and ``escapes`` (no hit at all) are added to it.
+    texel : (m,) int64
+        Texel of each sample (row-major): adaptive sampling pools variances over aligned blocks of them.
     """
     s = ctx.settings
     measure = measure_named(s.measure)
     far = max(float(s.reach), ctx.escape_distance)
     active = np.arange(len(index))
     adaptive = s.target_error is not None
+    replicates = moments.replicates
+    if adaptive:
+        width = s.width
+        row, col = texel // width // ADAPTIVE_POOL_BLOCK, texel % width // ADAPTIVE_POOL_BLOCK
+        _, block = np.unique(row * (width // ADAPTIVE_POOL_BLOCK + 1) + col, return_inverse=True)
+        block_count = int(block.max()) + 1
+        block_size = np.bincount(block, minlength=block_count).astype(np.float64)
     for ray_start, ray_stop in _ray_schedule(ctx.rays_per_sample, adaptive):
         k = ray_stop - ray_start
         per_call = max(1, min(ctx.run.chunk_rays, RAYS_PER_CALL) // k)
         for lo in range(0, len(active), per_call):
             idx = active[lo:lo + per_call]
-            u1, u2 = variates(s.seed, keys[idx], ray_start, ray_stop, s.sequence)
+            u1, u2 = variates(s.seed, keys[idx], ray_start, ray_stop, s.sequence, replicates)
             directions, _ = ray_directions(u1, u2, axis[idx], s.cone, s.lobe)
             ray_origins = np.repeat(origins[idx], k, axis=0)
             distance, hit_any = engine.first_hit(ray_origins, directions, far)
@@ -717,8 +739,11 @@ def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np
             tally["escapes"] += int(hit_any.size - np.count_nonzero(hit_any))
             tally["rays"] += hit.size
         if adaptive:
-            rows = index[active]
-            more = (moments.stderr()[rows] > s.target_error) & (moments.count[rows] < ctx.rays_per_sample)
+            var = np.square(moments.stderr()[index])
+            pooled = np.bincount(block, weights=var, minlength=block_count)[block] / block_size[block]
+            limit = s.target_error * s.target_error
+            more = (((var[active] > limit) | (pooled[active] > limit))
+                    & (moments.count[index[active]] < ctx.rays_per_sample))
             active = active[more]
             if len(active) == 0:
                 break
