@@ -273,7 +273,9 @@ def test_verify_fails_without_bias(capsys):
     code, doc, _ = run_verify(capsys, "--shapes", "sphere,box", "--size", "96", "--bias", "0")
     assert code == 1 and doc["passed"] is False
     assert status(doc, "sphere", "per texel, cone closed form") == "FAIL"
-    assert status(doc, "box", "Cauchy mean chord 4V/S") == "FAIL"
+    assert status(doc, "sphere", "Cauchy mean chord 4V/S") == "FAIL"
+    # (the box's rays start exactly on axis-aligned faces; whether they hit their own triangle then
+    # depends on the scene's arithmetic, so its row is not asserted)
     assert any("bias 0 lets rays hit the triangle they start on" in c["note"] for c in doc["checks"])
 
 

@@ -537,7 +537,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     from thickbake.pipeline.driver import bake_maps
     from thickbake.checks.meshcheck import face_orientation, front_face_hits
     from thickbake.pipeline.load import load_asset
-    from thickbake.pipeline.trace import make_engine
+    from thickbake.pipeline.trace import closed_surface, make_engine
 
     start = time.perf_counter()
     asset = load_asset(source)
@@ -548,7 +548,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
                   if options and k in options]
     settings = user.replace(cone=90.0, lobe="cosine", measure="thickness", reach=None, invert=False,
                             attenuation_distance=None)
-    engine = make_engine(asset.trace_vertices, asset.trace_faces)
+    engine = make_engine(asset.trace_vertices, asset.trace_faces, closed=rep.watertight)
     checks: list[Check] = []
 
     # closed surface
@@ -571,7 +571,7 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     # zero-area triangles have no orientation: load leaves them out of its checks, and so does verify
     solid = asset.trace_faces if asset.face_degenerate is None else asset.trace_faces[~asset.face_degenerate]
     orient = face_orientation(asset.trace_vertices, solid, engine if len(solid) == len(asset.trace_faces)
-                              else make_engine(asset.trace_vertices, solid))
+                              else make_engine(asset.trace_vertices, solid, closed=closed_surface(solid)))
     wrong = len(orient.wrong_faces)
     figures = {"faces": orient.faces, "wrong_faces": wrong, "parts": orient.parts,
                "inside_out_parts": orient.inside_out_parts, "conflicts": orient.conflicts,

@@ -39,6 +39,11 @@ class SubsetEngine:
         self._engine = make(vertices, faces[self.keep])
         self.name = getattr(self._engine, "name", type(self._engine).__name__)
 
+    @property
+    def rays_retraced(self) -> int:
+        """Rays the wrapped engine re-traced in a robust scene (its leak guard), 0 if it has none."""
+        return getattr(self._engine, "rays_retraced", 0)
+
     def first_hit(self, origins, directions, max_distance):
         return self._engine.first_hit(origins, directions, max_distance)
 

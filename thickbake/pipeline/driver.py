@@ -337,10 +337,14 @@ def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None
     s = settings.resolve(asset.diagonal if transfer is None else transfer.solid.diagonal)
     r = run.resolve()
     groups, group_warnings = map_groups(asset, s.uv_set)
-    from thickbake.pipeline.trace import make_engine
+    from thickbake.pipeline.trace import closed_surface, make_engine
+
+    def make(vertices, faces):
+        # a closed (sub)mesh lets the leak guard re-trace rays that escape it
+        return make_engine(vertices, faces, closed=closed_surface(faces))
 
     if transfer is None:
-        engines, engine_of_face = build_engines(asset, s.blockers, make_engine, engine)
+        engines, engine_of_face = build_engines(asset, s.blockers, make, engine)
     else:  # every target face measures in the source
         engines, engine_of_face = [transfer.engine], np.zeros(len(asset.trace_faces), np.int64)
     setup = time.perf_counter() - start
@@ -372,6 +376,7 @@ def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, eng
     """Bake the map of one group of faces (all of the asset's engines shared); ``fit`` fits this
     map's own reach (so each map of an asset uses its full code range)."""
     start = time.perf_counter() - setup_seconds
+    retraced_before = sum(getattr(e, "rays_retraced", 0) for e in engines)
     ctx, tiles, starts, members = _prepare(asset, s, r, group, engines, engine_of_face, transfer)
     setup_seconds = time.perf_counter() - start
     totals = _run_tiles(ctx, tiles, starts, members, progress)
@@ -386,6 +391,7 @@ def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, eng
                              path=asset.path, fix="check the UVs lie inside the 0–1 square or in UDIM tiles")
     timing = {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)}
     info = _bake_info(ctx, covered, totals, time.perf_counter() - start, timing)
+    info["rays_retraced"] = int(sum(getattr(e, "rays_retraced", 0) for e in engines) - retraced_before)
     if fit:
         reach, info["reach_fit"] = fit_reach(ctx.values, covered, s.reach)
         s = s.replace(reach=reach)

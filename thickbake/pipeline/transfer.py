@@ -344,9 +344,9 @@ def prepare_transfer(target: Asset, source, cage=None, search_distance: float | 
                                  fix="give one: the cage sets the search distance at every point")
     solid = (source if isinstance(source, SourceSolid) else load_source(source)).in_frame(target.centre)
     if engine is None:
-        from thickbake.pipeline.trace import make_engine
+        from thickbake.pipeline.trace import closed_surface, make_engine
 
-        engine = make_engine(solid.trace_vertices, solid.trace_faces)
+        engine = make_engine(solid.trace_vertices, solid.trace_faces, closed=closed_surface(solid.trace_faces))
     corners = name = digest = None
     if cage is not None:
         cage_asset = cage if isinstance(cage, Asset) else load_asset(cage, need_uv=False)
