@@ -4,15 +4,21 @@
 Prints, on one generated ~80k-face closed UV-mapped mesh:
 
 * A  raw embreex throughput on exactly the rays the bake traces (recorded from a bake, replayed with
-     the same chunking through a thread pool over one scene), rays/s;
-* B  ``thickbake.bake`` end to end (loaded mesh → encoded map), rays/s, all threads and one thread;
+     the same chunking through a thread pool over one scene), rays/s, in Embree's fast (non-robust)
+     scene — the scene the bake traces — and in a robust scene;
+* B  ``thickbake.bake`` end to end (loaded mesh → encoded map), rays/s, all threads and one thread,
+     with its default engine (fast scene, suspect rays re-traced robustly) and with the robust scene
+     alone: the guard's speed-up, the rays it re-traced, and whether the two maps are identical;
 * C  the first thing a Python user would write: the same rays through trimesh's public
      ``mesh.ray.intersects_location``, chunked, one thread (on a prefix of the rays);
 * the ratios B/A, B/C and B(all)/B(1), and peak RSS;
 * noise: per-texel RMS error against the sphere's closed form 4R/3 (cosine lobe) with Sobol +
-  per-sample rotation vs independent random directions, both at 32 rays;
-* adaptive rays: p95 error against a 512-ray reference and the share of rays traced, fixed vs
-  ``--target-error``, on the shell-and-ball shape and on the bundled sample;
+  per-replicate rotation vs independent random directions, both at 32 rays;
+* calibration of the error bars (scripts/calibration.py): share of texels within the stated 95% and
+  68.3% bands, sphere and shell-and-ball, 16/64/256 rays, cosine/uniform lobes, cones 30° and 90°;
+* adaptive rays: p95 error against a 16x-ray reference and the share of rays traced, fixed vs
+  ``--target-error`` at targets tied to the fixed bake's own error, on the shell-and-ball shape and on
+  the bundled sample;
 * ray order (Z order vs rows) and work-item size (``chunk_rays``);
 * incremental batch: a second ``run_batch`` over an unchanged folder (every asset skipped) against
   the first, as a ratio of wall-clock times;
@@ -21,6 +27,7 @@ Prints, on one generated ~80k-face closed UV-mapped mesh:
 Machines are shared and noisy: only ratios measured in the same run mean anything.
 
     python scripts/bench.py                 # full run (~5 min on 2 cores; holds ~1 GB of recorded rays for A)
+    python scripts/bench.py --size 512      # a quarter of the throughput rays
     python scripts/bench.py --quick         # tiny smoke run (seconds)
     python scripts/bench.py --memory-size 4096
 """
@@ -80,10 +87,10 @@ def bumpy_torus(faces_target: int = 80_000):
 
 
 class RecordingEngine(EmbreeEngine):
-    """Embree engine that keeps a copy of every ray batch it is asked to trace."""
+    """The bake's default engine (fast scene + leak guard) keeping a copy of every ray batch it traces."""
 
-    def __init__(self, vertices, faces):
-        super().__init__(vertices, faces)
+    def __init__(self, vertices, faces, closed):
+        super().__init__(vertices, faces, closed=closed)
         self.batches = []
 
     def first_hit(self, origins, directions, max_distance):
@@ -99,29 +106,56 @@ def rate(rays: int, seconds: float) -> float:
     return rays / max(seconds, 1e-9)
 
 
+def raw_embree_scene(asset, robust: bool):
+    """A bare embreex scene over the trace mesh (no thickbake code in the loop)."""
+    from embreex import rtcore_scene
+    from embreex.mesh_construction import TriangleMesh
+
+    scene = rtcore_scene.EmbreeScene(robust=robust)
+    mesh = TriangleMesh(scene, np.ascontiguousarray(asset.trace_vertices, np.float32),
+                        np.ascontiguousarray(asset.trace_faces, np.int32))
+    scene.run(np.zeros((1, 3), np.float32), np.ones((1, 3), np.float32), query="DISTANCE")
+    return scene, mesh
+
+
+def replay(scene, batches, threads: int) -> float:
+    """Seconds to trace the recorded batches through ``scene`` (DISTANCE queries, a thread pool)."""
+    def run(batch):
+        origins, directions, limit = batch
+        return scene.run(origins, directions, dists=np.full(len(origins), limit, np.float32), query="DISTANCE")
+
+    with ThreadPoolExecutor(threads) as pool:
+        t0 = time.perf_counter()
+        list(pool.map(run, batches))
+        return time.perf_counter() - t0
+
+
 def bench_throughput(asset, size: int, rays: int, threads: int, c_rays: int) -> dict:
     settings = dict(size=size, rays=rays, threads=threads)
     # record exactly the rays of a bake (single-threaded so batches come in a fixed order)
-    recorder = RecordingEngine(asset.trace_vertices, asset.trace_faces)
+    recorder = RecordingEngine(asset.trace_vertices, asset.trace_faces, closed=asset.report.watertight)
     thickbake.bake(asset, engine=recorder, **{**settings, "threads": 1})
     batches = recorder.batches
     total = sum(len(o) for o, _, _ in batches)
 
-    engine = EmbreeEngine(asset.trace_vertices, asset.trace_faces)
-    with ThreadPoolExecutor(threads) as pool:
-        t0 = time.perf_counter()
-        list(pool.map(lambda b: engine.first_hit(*b), batches))
-        a_seconds = time.perf_counter() - t0
+    fast_scene, _fast_mesh = raw_embree_scene(asset, robust=False)
+    robust_scene, _robust_mesh = raw_embree_scene(asset, robust=True)
+    a_seconds = replay(fast_scene, batches, threads)
+    a_robust_seconds = replay(robust_scene, batches, threads)
 
-    def end_to_end(n_threads: int) -> tuple[float, int]:
+    def end_to_end(n_threads: int, engine=None):
         t0 = time.perf_counter()
-        result = thickbake.bake(asset, **{**settings, "threads": n_threads})
+        result = thickbake.bake(asset, engine=engine, **{**settings, "threads": n_threads})
         result.codes()
-        return time.perf_counter() - t0, result.info["rays_traced"]
+        return time.perf_counter() - t0, result
 
-    b_seconds, b_rays = end_to_end(threads)
-    b1_seconds, b1_rays = end_to_end(1)
-    assert b_rays == total == b1_rays
+    b_seconds, b_result = end_to_end(threads)
+    robust_engine = EmbreeEngine(asset.trace_vertices, asset.trace_faces, closed=asset.report.watertight, mode="robust")
+    br_seconds, br_result = end_to_end(threads, robust_engine)
+    b1_seconds, b1_result = end_to_end(1)
+    b_rays = b_result.info["rays_traced"]
+    assert b_rays == total == b1_result.info["rays_traced"] == br_result.info["rays_traced"]
+    identical = bool(np.array_equal(b_result.values, br_result.values) and np.array_equal(b_result.stderr, br_result.stderr))
 
     # C: trimesh's public API, chunked, one thread, on a prefix of the same rays
     mesh = asset_trimesh(asset)
@@ -132,10 +166,15 @@ def bench_throughput(asset, size: int, rays: int, threads: int, c_rays: int) -> 
         mesh.ray.intersects_location(origins[lo:lo + 10_000], dirs[lo:lo + 10_000], multiple_hits=False)
     c_seconds = time.perf_counter() - t0
     del batches, recorder
-    a, b, b1, c = rate(total, a_seconds), rate(b_rays, b_seconds), rate(b1_rays, b1_seconds), rate(len(origins), c_seconds)
-    return {"rays": total, "A_embree_rays_per_s": a, "B_bake_rays_per_s": b, "B1_bake_1thread_rays_per_s": b1,
+    a, a_r = rate(total, a_seconds), rate(total, a_robust_seconds)
+    b, b1, b_r = rate(b_rays, b_seconds), rate(b_rays, b1_seconds), rate(b_rays, br_seconds)
+    c = rate(len(origins), c_seconds)
+    return {"rays": total, "A_embree_rays_per_s": a, "A_embree_robust_rays_per_s": a_r,
+            "B_bake_rays_per_s": b, "B_bake_robust_only_rays_per_s": b_r, "B1_bake_1thread_rays_per_s": b1,
             "C_trimesh_rays_per_s": c, "C_rays_measured": len(origins),
-            "B_over_A": b / a, "B_over_C": b / c, "thread_scaling": b / b1}
+            "B_over_A": b / a, "B_over_A_robust": b / a_r, "B_over_C": b / c, "thread_scaling": b / b1,
+            "raw_fast_over_robust": a / a_r, "guard_speedup": b / b_r,
+            "rays_retraced": int(b_result.info["rays_retraced"]), "identical_to_robust_only": identical}
 
 
 def asset_trimesh(asset):
@@ -157,18 +196,35 @@ def bench_noise(size: int, rays: int) -> dict:
     return out
 
 
-def bench_adaptive(mesh, size: int, cap: int, target: float, reference_rays: int = 512) -> dict:
-    ref = thickbake.bake(mesh, size=size, rays=reference_rays, seed=12345)
-    fixed = thickbake.bake(mesh, size=size, rays=cap)
-    adaptive = thickbake.bake(mesh, size=size, rays=cap, target_error=target)
-    cov = ref.covered
+def bench_adaptive(mesh, size: int, cap: int, reference_factor: int = 16) -> dict:
+    """Fixed bake at the cap vs adaptive bakes at targets E tied to the fixed bake's own error.
 
-    def p95(result):
-        return float(np.percentile(np.abs(result.values[cov] - ref.values[cov]), 95))
+    E runs over the fixed bake's p95 and RMS absolute error (against a reference with
+    ``reference_factor`` x the rays and another seed) times 1, 1/2 and 1/4.
+    """
+    from thickbake.pipeline.load import load_asset as load
 
-    return {"cap": cap, "target_error": target, "p95_fixed": p95(fixed), "p95_adaptive": p95(adaptive),
-            "rays_fixed": fixed.info["rays_traced"], "rays_adaptive": adaptive.info["rays_traced"],
-            "ray_share": adaptive.info["rays_traced"] / fixed.info["rays_traced"]}
+    asset = load(mesh)
+    ref = thickbake.bake(asset, size=size, rays=cap * reference_factor, seed=12345)
+    fixed = thickbake.bake(asset, size=size, rays=cap)
+    cov = ref.covered & fixed.covered
+
+    def errors(result):
+        return np.abs(result.values[cov].astype(np.float64) - ref.values[cov])
+
+    e_fixed = errors(fixed)
+    p95_fixed = float(np.percentile(e_fixed, 95))
+    rms_fixed = float(np.sqrt(np.mean(e_fixed ** 2)))
+    rows = []
+    for basis, typical in (("p95", p95_fixed), ("rms", rms_fixed)):
+        for fraction in (1.0, 0.5, 0.25):
+            target = typical * fraction
+            adaptive = thickbake.bake(asset, size=size, rays=cap, target_error=float(target))
+            rows.append({"basis": basis, "fraction": fraction, "target_error": target,
+                         "p95_adaptive": float(np.percentile(errors(adaptive), 95)),
+                         "ray_share": adaptive.info["rays_traced"] / fixed.info["rays_traced"]})
+    return {"cap": cap, "size": size, "reference_rays": cap * reference_factor, "p95_fixed": p95_fixed,
+            "rms_fixed": rms_fixed, "rays_fixed": fixed.info["rays_traced"], "targets": rows}
 
 
 def bench_order_chunks(asset, size: int, rays: int, threads: int) -> dict:
@@ -194,7 +250,7 @@ def bench_memory(size: int, rays: int, faces: int) -> dict:
         "import sys, time; sys.path.insert(0, %r)\n"
         "sys.argv = ['bench']\n"
         "import bench, thickbake\n"
-        "from thickbake.mesh import load_asset\n"
+        "from thickbake.pipeline.load import load_asset\n"
         "asset = load_asset(bench.bumpy_torus(%d))\n"
         "t = time.perf_counter(); r = thickbake.bake(asset, size=%d, rays=%d); r.codes()\n"
         "seconds = time.perf_counter() - t\n"
@@ -253,22 +309,38 @@ def main(argv=None) -> int:
     t = bench_throughput(asset, args.size, args.rays, args.threads, args.c_rays)
     figures["throughput"] = t
     print(f"\n== throughput: {args.size}² map, {args.rays} rays/texel, {t['rays']:,} rays, {args.threads} threads")
-    print(f"A  embree on the bake's rays      {t['A_embree_rays_per_s'] / 1e6:8.2f} M rays/s")
-    print(f"B  thickbake.bake end to end      {t['B_bake_rays_per_s'] / 1e6:8.2f} M rays/s")
-    print(f"B1 thickbake.bake, 1 thread       {t['B1_bake_1thread_rays_per_s'] / 1e6:8.2f} M rays/s")
-    print(f"C  trimesh intersects_location    {t['C_trimesh_rays_per_s'] / 1e6:8.4f} M rays/s  ({t['C_rays_measured']:,} rays)")
-    print(f"B/A = {t['B_over_A']:.3f}  (target >= 0.8)")
+    print(f"A  embree (fast scene) on the bake's rays   {t['A_embree_rays_per_s'] / 1e6:8.2f} M rays/s")
+    print(f"A' embree (robust scene), same rays        {t['A_embree_robust_rays_per_s'] / 1e6:8.2f} M rays/s"
+          f"   (raw fast/robust {t['raw_fast_over_robust']:.2f}x)")
+    print(f"B  thickbake.bake end to end               {t['B_bake_rays_per_s'] / 1e6:8.2f} M rays/s"
+          f"   (fast scene + leak guard: {t['rays_retraced']:,} rays re-traced, "
+          f"{t['rays_retraced'] / t['rays']:.2%})")
+    print(f"B' thickbake.bake, robust scene only       {t['B_bake_robust_only_rays_per_s'] / 1e6:8.2f} M rays/s")
+    print(f"B1 thickbake.bake, 1 thread                {t['B1_bake_1thread_rays_per_s'] / 1e6:8.2f} M rays/s")
+    print(f"C  trimesh intersects_location             {t['C_trimesh_rays_per_s'] / 1e6:8.4f} M rays/s  ({t['C_rays_measured']:,} rays)")
+    print(f"B/A = {t['B_over_A']:.3f}  (against the fast scene it traces; target >= 0.9)   "
+          f"B/A' = {t['B_over_A_robust']:.3f} (against the robust scene)")
+    print(f"leak guard: B/B' = {t['guard_speedup']:.2f}x faster than a robust-only bake; maps identical: "
+          f"{'yes' if t['identical_to_robust_only'] else 'NO'}")
     print(f"B/C = {t['B_over_C']:.1f}  (target >= 4)")
     print(f"B(all)/B(1) = {t['thread_scaling']:.2f}  (target >= 1.8 on 2 cores)")
 
     n = bench_noise(32 if args.quick else 128, 32)
     figures["noise"] = n
     print("\n== noise: sphere R = 1, cosine lobe, 32 rays, per-texel RMS error vs 4R/3")
-    print(f"Sobol + per-sample rotation  {n['rms_sobol']:.5f}")
+    print(f"Sobol + per-replicate rotation  {n['rms_sobol']:.5f}")
     print(f"independent random           {n['rms_random']:.5f}")
     print(f"ratio = {n['ratio_sobol_over_random']:.3f}  (target <= 0.5)")
 
     from thickbake.checks import shapes
+    from thickbake.checks.calibration import calibration_table, table_lines
+
+    print("\n== calibration of the error bars: share of covered texels within the stated bands "
+          "(targets 0.95 ± 0.03 and 0.683 ± 0.05)")
+    cal = calibration_table(rays_list=(16,) if args.quick else (16, 64, 256), size=24 if args.quick else 64,
+                            thin_thick_size=24 if args.quick else 48)
+    figures["calibration"] = [row.to_dict() for row in cal]
+    print("\n".join(table_lines(cal)))
 
     adaptive_size = 32 if args.quick else 192
     # a leaf-thin shell (wall 0.5% of its radius) beside a solid ball of half its radius; 88% of
@@ -278,14 +350,17 @@ def main(argv=None) -> int:
     if sample.exists():
         cases.append(("samples/candle.glb", str(sample)))
     figures["adaptive"] = {}
-    print(f"\n== adaptive rays: {adaptive_size}² map, cap 64 rays, p95 |error| vs a 512-ray reference")
+    cap = 64
+    print(f"\n== adaptive rays: {adaptive_size}² map, cap {cap} rays, p95 |error| vs a {16 * cap}-ray reference; "
+          "E = the fixed bake's p95 or RMS error x 1, 1/2, 1/4 (goal: same p95 with <= 35% of the rays)")
     for label, mesh in cases:
-        # standard-error target: 0.1% of the bounding-box diagonal (0.0043 scene units on the shell)
-        target = 0.001 * load_asset(mesh).diagonal
-        a = bench_adaptive(mesh, adaptive_size, 64, target)
+        a = bench_adaptive(mesh, adaptive_size, cap)
         figures["adaptive"][label] = a
-        print(f"{label:22s} fixed p95 {a['p95_fixed']:.5f}  adaptive p95 {a['p95_adaptive']:.5f}  "
-              f"rays {a['ray_share']:.1%} of fixed (target: p95 no worse, <= 40% rays)")
+        print(f"{label}: fixed p95 {a['p95_fixed']:.3g}, RMS {a['rms_fixed']:.3g}")
+        for row in a["targets"]:
+            print(f"   E = {row['fraction']:<4g} x {row['basis']} = {row['target_error']:.3g}: adaptive p95 "
+                  f"{row['p95_adaptive']:.3g} ({row['p95_adaptive'] / a['p95_fixed']:.3f} of fixed), "
+                  f"rays {row['ray_share']:.1%} of fixed")
 
     o = bench_order_chunks(asset, args.size, args.rays, args.threads)
     figures["order_chunks"] = o

@@ -62,7 +62,7 @@ def test_bench_quick_runs(tmp_path):
     proc = subprocess.run([sys.executable, str(ROOT / "scripts" / "bench.py"), "--quick", "--json", str(out)],
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr
-    for label in ("B/A", "B/C", "B(all)/B(1)", "Sobol", "adaptive", "Z order"):
+    for label in ("B/A", "B/C", "B(all)/B(1)", "Sobol", "adaptive", "Z order", "calibration", "leak guard", "re-traced"):
         assert label in proc.stdout
     figures = json.loads(out.read_text())
     assert figures["throughput"]["rays"] > 0 and figures["noise"]["rms_sobol"] > 0

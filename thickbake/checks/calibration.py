@@ -188,5 +188,23 @@ def calibration_table(rays_list=(16, 64, 256), lobes=("cosine", "uniform"), cone
     return rows
 
 
-__all__ = ["LEVEL_95", "LEVEL_1SIGMA", "REFERENCE_FACTOR", "FINE_SPHERE_SEGMENTS", "CalibrationRow", "band_shares",
+def table_lines(rows: list[CalibrationRow]) -> list[str]:
+    """The calibration table as text lines (one row per body and setting, the targets in the header)."""
+    out = [f"{'body':<22} {'truth':<18} {'rays':>5} {'lobe':<8} {'cone':>5} {'texels':>6}  {'in 95% band':>11} "
+           f"{'in 68.3% band':>13}  {'RMS error':>9} {'RMS σ̂':>9}"]
+    for r in rows:
+        flag95 = "" if abs(r.share_95 - LEVEL_95) <= 0.03 else " *"
+        flag68 = "" if abs(r.share_1sigma - LEVEL_1SIGMA) <= 0.05 else " *"
+        out.append(f"{r.body:<22} {r.truth:<18} {r.rays:>5} {r.lobe:<8} {r.cone:>5g} {r.texels:>6}  "
+                   f"{r.share_95:>9.3f}{flag95:<2} {r.share_1sigma:>11.3f}{flag68:<2}  {r.rms_error:>9.3g} "
+                   f"{r.rms_stderr:>9.3g}")
+    if rows:
+        r = rows[0]
+        out.append(f"bands: ±{r.k95:.2f}σ̂ and ±{r.k1sigma:.2f}σ̂ (Student-t, R − 1 = 3 dof); * = outside 0.95 ± 0.03 "
+                   f"or 0.683 ± 0.05; binomial sd of a share over n texels: sqrt(p(1 − p)/n), e.g. "
+                   f"{r.binomial_sd_95:.3f} at n = {r.texels}")
+    return out
+
+
+__all__ = ["table_lines", "LEVEL_95", "LEVEL_1SIGMA", "REFERENCE_FACTOR", "FINE_SPHERE_SEGMENTS", "CalibrationRow", "band_shares",
            "calibrate", "fine_sphere", "sphere_expected", "calibration_table"]
