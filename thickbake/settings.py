@@ -163,11 +163,11 @@ class BakeSettings:
     bias : float or None
         Inward origin offset in scene units; None → 1e-4 × bounding-box diagonal.
     sequence : {"sobol", "random"}
-        Directions from a scrambled Sobol set with a per-sample Cranley–Patterson rotation, or
-        independent uniform random numbers (for comparison only).
+        Directions from a scrambled Sobol set, split into 4 replicates per sample each with its own
+        Cranley–Patterson rotation, or independent uniform random numbers (for comparison only).
     target_error : float or None
-        Adaptive mode: stop adding rays to a sample once the standard error of its mean is at most
-        this (measure units); ``rays`` is the cap.
+        Adaptive mode: stop adding rays to a sample once the replicate standard error of its mean,
+        and the pooled one of its 4×4-texel block, are at most this (measure units); ``rays`` is the cap.
     medium : str or None
         A measured medium (:mod:`thickbake.media`, e.g. ``"marble"``): the map becomes the RGB
         transmittance exp(−σtr · d) through the baked thickness d.  Needs ``measure="thickness"``.

@@ -82,7 +82,7 @@ def add_bake_options(parser: argparse.ArgumentParser, size_default: str = "1024"
     g.add_argument("--threads", type=int, metavar="N", help="worker threads (default: all cores)")
     g.add_argument("--bias", type=float, metavar="B", help="inward start offset (default 1e-4 x bounding-box diagonal)")
     g.add_argument("--sequence", choices=("sobol", "random"),
-                   help="direction sequence: scrambled Sobol with per-sample rotation (default) or independent random")
+                   help="direction sequence: scrambled Sobol, 4 independently rotated replicates per sample (default), or independent random")
     g.add_argument("--target-error", type=float, metavar="E",
                    help="adaptive: stop adding rays to a sample once its standard error is at most E (measure units)")
     g.add_argument("--medium", metavar="NAME|list",

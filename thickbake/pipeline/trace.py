@@ -168,7 +168,8 @@ class EmbreeEngine:
         if mode in ("guarded", "robust"):
             self._robust = rtcore_scene.EmbreeScene(robust=True)
             self._meshes.append(TriangleMesh(self._robust, v, f))
-        self._planes, self._edge_margin = _face_table(vertices, faces)
+        table, self._edge_margin = _face_table(vertices, faces)
+        self._planes = np.ascontiguousarray(table.T)          # (16, f): one contiguous column per field
         self._lock = threading.Lock()
         #: Rays traced (first pass) and rays re-traced in the robust scene since construction.
         self.rays_traced = 0
@@ -189,20 +190,37 @@ class EmbreeEngine:
         distance to the nearest edge of its triangle, times |d·n| (a grazing ray's hit point is less
         certain), is below the margin.
         """
-        g = np.take(self._planes, np.maximum(face, 0), axis=0)                    # (n, 16)
-        o, d = origins, directions
-        w0, w1, w2 = g[:, 0] - o[:, 0], g[:, 1] - o[:, 1], g[:, 2] - o[:, 2]      # v0 − o
-        den = d[:, 0] * g[:, 3] + d[:, 1] * g[:, 4] + d[:, 2] * g[:, 5]
-        num = w0 * g[:, 3] + w1 * g[:, 4] + w2 * g[:, 5]
-        with np.errstate(divide="ignore", invalid="ignore"):
+        f = np.maximum(face, 0)
+        col = [column.take(f) for column in self._planes]                         # 16 × (n,), contiguous
+        o, d = origins.T, directions.T
+        w = [col[j] - o[j] for j in range(3)]                                        # v0 − o
+        den = d[0] * col[3]
+        den += d[1] * col[4]
+        den += d[2] * col[5]
+        num = w[0] * col[3]
+        num += w[1] * col[4]
+        num += w[2] * col[5]
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             t = num / den
-            # hit point relative to v0: q = t·d − (v0 − o)
-            q0, q1, q2 = t * d[:, 0] - w0, t * d[:, 1] - w1, t * d[:, 2] - w2
-            e01 = q0 * g[:, 6] + q1 * g[:, 7] + q2 * g[:, 8]
-            e02 = q0 * g[:, 9] + q1 * g[:, 10] + q2 * g[:, 11]
-            e12 = q0 * g[:, 12] + q1 * g[:, 13] + q2 * g[:, 14] - g[:, 15]
-            edge = np.minimum(np.minimum(e01, e02), e12)
-            near = ~(edge * np.abs(den) >= self._edge_margin)      # NaN (degenerate) counts as near
+            q = []                                                                   # hit point − v0
+            for j in range(3):
+                qj = t * d[j]
+                qj -= w[j]
+                q.append(qj)
+
+            def edge_distance(first):
+                out = q[0] * col[first]
+                out += q[1] * col[first + 1]
+                out += q[2] * col[first + 2]
+                return out
+
+            edge = edge_distance(6)
+            np.minimum(edge, edge_distance(9), out=edge)
+            e12 = edge_distance(12)
+            e12 -= col[15]
+            np.minimum(edge, e12, out=edge)
+            edge *= np.abs(den)
+            near = ~(edge >= self._edge_margin)      # NaN (degenerate) counts as near
         hit = face >= 0
         return t, np.where(hit, den, np.float32(0)), hit & near
 
