@@ -141,9 +141,10 @@ def polyhedron_exit(triangles, points, directions):
 
 def test_transfer_cosine_lobe_reads_four_thirds_r(target, source):
     # Source: cosine-weighted hemisphere mean chord of a sphere, 4R/3 (REFERENCES.md, chord geometry).
-    # Tolerance per texel: k·σ (σ the bake's standard-error map, an overestimate for Sobol sets; k = 6
-    # ≥ the two-sided normal quantile at 1e-3 / 10⁴ texels, 5.3, with room for the t-distribution of a
-    # 64-ray estimate) + facet + bias: start and exit points lie within δ of the ideal sphere; an exit
+    # Tolerance per texel: k·σ_pool (σ_pool the RMS of the bake's standard-error map: each texel's σ̂
+    # comes from 4 randomised-QMC replicates, only 3 dof, but on the sphere every texel sees the same
+    # integrand by symmetry, so the pooled value has thousands of dof; k = 6 ≥ the two-sided normal
+    # quantile at 1e-3 / 10⁴ texels, 5.3) + facet + bias: start and exit points lie within δ of the ideal sphere; an exit
     # off by δ lengthens the chord by ≤ δ/cosθ and a start off by δ by ≤ δ/cosθ, whose cosine-lobe
     # mean is ∫δ/x·2x dx = 2δ each, 4δ in all; the bias residual b(1 − cos²θ)/cosθ averages 4b/3.
     result = thickbake.bake(target, size=SIZE, rays=64, source=source.mesh)
@@ -152,7 +153,8 @@ def test_transfer_cosine_lobe_reads_four_thirds_r(target, source):
     sigma = result.stderr[covered].astype(np.float64)
     systematic = 4 * source.facet_error + 4 * result.settings.bias / 3 + f32_slack(result.settings.reach)
     assert result.info["miss_fraction"] == 0
-    assert np.all(np.abs(values - 4 * R / 3) <= 6 * sigma + systematic)
+    sigma_pool = float(np.sqrt(np.mean(sigma ** 2)))
+    assert np.all(np.abs(values - 4 * R / 3) <= 6 * sigma_pool + systematic)
     area = result.area[covered].astype(np.float64)
     mean = (area * values).sum() / area.sum()
     sigma_mean = np.sqrt((area ** 2 * sigma ** 2).sum()) / area.sum()
