@@ -141,7 +141,7 @@ def test_first_run_bakes_good_assets_and_records_failures(first_run):
     assert sorted(maps_in(out)) == sorted(batch.map_name(rel, "png") for rel in GOOD)
     assert statuses(out) == {**{rel: "baked" for rel in GOOD}, **{rel: "failed" for rel in BROKEN}}
     rows = {r["source"]: r for r in report_of(out)["assets"]}
-    assert "cannot read the file" in rows["broken/corrupt.glb"]["error"]
+    assert "does not start with the GLB magic" in rows["broken/corrupt.glb"]["error"]
     assert "no UV coordinates" in rows["broken/flat_no_uv.obj"]["error"]
     # one line per failure on stderr, the summary on stdout
     assert first_run["stderr"].count("thickbake: failed: broken/") == 2

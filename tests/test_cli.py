@@ -53,7 +53,7 @@ def _obj(path, text):
 BAD_INPUTS = {
     "missing": (lambda d: d / "nope.obj", "no such file"),
     "unreadable": (lambda d: (d / "broken.glb").write_bytes(b"glTF\x02\x00\x00\x00garbage") and d / "broken.glb",
-                   "cannot read"),
+                   "too short for a GLB"),
     "no_uv": (lambda d: _obj(d / "nouv.obj", "v 0 0 0\nv 1 0 0\nv 0 1 0\nv 0 0 1\nf 1 3 2\nf 1 2 4\nf 1 4 3\nf 2 3 4\n"),
               "no UV"),
     "zero_uv_area": (lambda d: _obj(d / "flatuv.obj", "v 0 0 0\nv 1 0 0\nv 0 1 0\nv 0 0 1\nvt 0.5 0.5\n"

@@ -38,6 +38,8 @@ import numpy as np
 
 from thickbake.constants import DEGENERATE_NORMAL_LENGTH, MERGE_TOLERANCE_FRACTION
 from thickbake.errors import ThickbakeError
+from thickbake.inputs import check_regular_file, read_regular_file
+from thickbake.pipeline.validate import check_glb, check_gltf, check_gltf_document, check_obj, check_ply, confined_resolver
 from thickbake.pipeline.readers import Material, Part, ReadResult, apply_transform, read_gltf, read_obj, transform_scale
 from thickbake.geometry import double_areas, expand_ranges, triangle_cross, unit_normals, uv_areas
 
@@ -158,15 +160,37 @@ class Asset:
 
 
 def file_sha256(path: str | os.PathLike) -> str:
-    """Hex sha256 of a file's bytes (streamed)."""
+    """Hex sha256 of a regular file's bytes (streamed; FIFOs, devices and folders are refused).
+
+    Raises
+    ------
+    ThickbakeError
+        The path is not a regular file, is over :data:`thickbake.inputs.MAX_FILE_BYTES`, or cannot
+        be read.
+    """
+    import stat
+
+    check_regular_file(path)
     digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
+    try:
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+    except OSError as exc:
+        raise ThickbakeError(f"cannot open the file ({exc.strerror or type(exc).__name__})", path=path,
+                             fix="check its permissions") from None
+    try:
+        if not stat.S_ISREG(os.fstat(fd).st_mode):
+            raise ThickbakeError("is not a regular file", path=path, fix="give the mesh file itself")
+        while block := os.read(fd, 1 << 20):
             digest.update(block)
+    except OSError as exc:
+        raise ThickbakeError(f"cannot read the file ({exc.strerror or type(exc).__name__})", path=path,
+                             fix="check the disk and the file's permissions") from None
+    finally:
+        os.close(fd)
     return digest.hexdigest()
 
 
-def load_asset(source, name: str | None = None, *, need_uv: bool = True) -> Asset:
+def load_asset(source, name: str | None = None, *, need_uv: bool = True, argument: str = "source") -> Asset:
     """Load a mesh file or a trimesh object into an :class:`Asset`.
 
     Parameters
@@ -180,55 +204,93 @@ def load_asset(source, name: str | None = None, *, need_uv: bool = True) -> Asse
     need_uv : bool
         False for a solid that is only traced (the source of a bake from a source solid, or a cage,
         :mod:`thickbake.pipeline.transfer`): its UVs are then neither required nor checked.
+    argument : str
+        What the caller calls ``source``, for the TypeError.
 
     Raises
     ------
+    TypeError
+        ``source`` is none of the accepted types.
     ThickbakeError
-        Missing or unreadable file, no faces, non-finite vertices, no UVs or UVs of zero area,
-        coordinates float32 cannot resolve.
+        Missing, unreadable, non-regular or oversized file (:mod:`thickbake.inputs`), structural
+        defects found by :mod:`thickbake.pipeline.validate`, no faces, non-finite vertices, no
+        surface, no UVs or UVs of zero area, coordinates float32 cannot resolve.
     """
+    import trimesh
+
     path = None
     digest = None
-    if isinstance(source, (str, os.PathLike)):
+    if isinstance(source, (str, os.PathLike)) and isinstance(os.fspath(source), str):
         path = os.fspath(source)
-        if not os.path.exists(path):
-            raise ThickbakeError("no such file", path=path, fix="check the path")
-        if os.path.isdir(path):
-            raise ThickbakeError("is a folder, not a mesh file", path=path, fix="give a mesh file, or use 'thickbake batch' for folders")
+        check_regular_file(path)  # never opens: a FIFO or device cannot hang the load
         suffix = Path(path).suffix.lower()
         if suffix not in MESH_SUFFIXES:
             raise ThickbakeError(
                 f"unsupported file type {suffix or '(none)'!r}", path=path,
                 fix=f"export the mesh as one of {', '.join(MESH_SUFFIXES)}",
             )
-        digest = file_sha256(path)
-        if suffix in (".gltf", ".glb"):
-            read = read_gltf(path)
-        elif suffix == ".obj":
-            read = read_obj(path)
-        else:
-            read = _read_with_trimesh(path)
+        data = read_regular_file(path)  # one read, at most MAX_FILE_BYTES: hashed and parsed from memory
+        digest = hashlib.sha256(data).hexdigest()
+        with np.errstate(all="ignore"):
+            read = _read_bytes(data, suffix, path)
         name = name or Path(path).name
-    else:
+    elif isinstance(source, (trimesh.Trimesh, trimesh.Scene)):
         read = _flatten(source, name or "mesh")
         name = name or "mesh"
+    else:
+        raise TypeError(f"{argument} must be a file path (str or os.PathLike), a trimesh.Trimesh or a "
+                        f"trimesh.Scene, not {type(source).__name__}")
     parts = [p for p in read.parts if len(p.triangles)]
     if not parts:
         raise ThickbakeError("the mesh is empty (no triangles)", path=path or name,
                              fix="export the asset with its geometry")
-    return _assemble(parts, read.materials, name=name, path=path, sha256=digest, need_uv=need_uv)
+    with np.errstate(all="ignore"):
+        return _assemble(parts, read.materials, name=name, path=path, sha256=digest, need_uv=need_uv)
+
+
+def _read_bytes(data: bytes, suffix: str, path: str) -> ReadResult:
+    """Pre-scan a file's bytes for what the readers leave unchecked (:mod:`thickbake.pipeline.validate`),
+    then read them.  External files (glTF buffers and images, OBJ materials) may only come from the
+    file's own folder: nothing outside it is opened and no same-named substitute is picked up."""
+    folder = Path(path).parent
+    if suffix in (".gltf", ".glb"):
+        if suffix == ".glb":
+            document, bin_length = check_glb(data, path)
+            check_gltf_document(document, path, folder=folder, bin_length=bin_length)
+        else:
+            check_gltf(data, path)
+        return read_gltf(path, data=data)
+    if suffix == ".obj":
+        return read_obj(path, data=check_obj(data, path))
+    if suffix == ".ply":
+        check_ply(data, path)
+    return _read_with_trimesh(data, suffix, path)
 
 
 # ---------------------------------------------------------------------------- flattening
-def _read_with_trimesh(path: str) -> ReadResult:
+def _read_with_trimesh(data: bytes, suffix: str, path: str) -> ReadResult:
+    import io
+    import logging
+    import warnings
+
     import trimesh
 
+    resolver = confined_resolver(Path(path).parent, path)
     try:
         # (maintain_order=True would keep vertex order but drops an OBJ's UVs when the file
         # has an unused vertex, with trimesh 5.2; the bake does not need the file's order)
-        loaded = trimesh.load(path, process=False)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            logging.getLogger("trimesh").setLevel(logging.CRITICAL)
+            loaded = trimesh.load(io.BytesIO(data), file_type=suffix[1:], resolver=resolver, process=False)
+    except ThickbakeError:
+        raise
+    except MemoryError:
+        raise ThickbakeError("not enough memory to load the file", path=path,
+                             fix="decimate the mesh, or bake on a machine with more memory") from None
     except Exception as exc:  # trimesh raises many types for broken files
-        detail = " ".join(str(exc).split())[:160] or type(exc).__name__
+        detail = " ".join(str(exc).split())[:160]
+        detail = f"{type(exc).__name__}: {detail}" if detail else type(exc).__name__
         raise ThickbakeError(f"cannot read the file ({detail})", path=path,
                              fix="re-export it from your modelling tool") from None
     return _flatten(loaded, path)
@@ -382,6 +444,9 @@ def _assemble(parts: list[Part], materials: list[Material], name: str, path: str
     welded = trace_faces
     degenerate = ((welded[:, 0] == welded[:, 1]) | (welded[:, 1] == welded[:, 2]) | (welded[:, 0] == welded[:, 2])
                   | ~(double_area > (DEGENERATE_AREA_FRACTION * diagonal) ** 2))
+    if degenerate.all():
+        raise ThickbakeError("the mesh has no surface area (every triangle is degenerate: its corners are collinear "
+                             "or coincide)", path=where, fix="export the real geometry, not a line or a point cloud")
     solid_faces = trace_faces[~degenerate]
 
     volume = signed_volume(trace_vertices, solid_faces)

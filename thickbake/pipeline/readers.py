@@ -25,11 +25,11 @@ import os
 import struct
 from dataclasses import dataclass, field
 from pathlib import Path
-from urllib.parse import unquote
 
 import numpy as np
 
 from thickbake.errors import ThickbakeError
+from thickbake.inputs import confined_path, read_regular_file
 
 #: Relative spread of a node transform's singular values below which its scale counts as uniform:
 #: float32 matrices composed over a few levels carry ~1e-7 relative error each.
@@ -154,10 +154,14 @@ def _glb_chunks(data: bytes, where: str):
     return doc, binary
 
 
-def read_gltf(path: str) -> ReadResult:
-    """Read a ``.gltf``/``.glb`` file into world-space parts (see the module docstring)."""
+def read_gltf(path: str, data: bytes | None = None) -> ReadResult:
+    """Read a ``.gltf``/``.glb`` file into world-space parts (see the module docstring).
+
+    ``data`` is the file's bytes when the caller has read them already.  External buffers are read
+    only from inside the file's folder (:func:`thickbake.inputs.confined_path`).
+    """
     where = path
-    raw = Path(path).read_bytes()
+    raw = data if data is not None else read_regular_file(path)
     binary = None
     try:
         if raw[:4] == b"glTF":
@@ -205,12 +209,9 @@ class _GltfReader:
             elif uri.startswith("data:"):
                 data = base64.b64decode(uri.split(",", 1)[1])
             else:
-                target = self.folder / unquote(uri)
-                try:
-                    data = target.read_bytes()
-                except OSError:
-                    raise ThickbakeError(f"cannot read the file's buffer {uri!r}", path=self.where,
-                                         fix="keep the .bin files next to the .gltf") from None
+                # only a regular file inside the asset's folder: never '..', an absolute path or a link out
+                target = confined_path(self.folder, uri, self.where)
+                data = read_regular_file(target, what=f"buffer {uri!r} of the asset")
             if len(data) < int(spec.get("byteLength", 0)):
                 raise ThickbakeError(f"cannot read the file (buffer {index} is shorter than declared)",
                                      path=self.where, fix="re-export it")
@@ -384,13 +385,13 @@ def _node_matrix(node: dict) -> np.ndarray:
 
 
 # ----------------------------------------------------------------------------------------------- OBJ
-def read_obj(path: str) -> ReadResult:
-    """Read a Wavefront OBJ file into parts, one per (object/group, material) run (see the module docstring)."""
+def read_obj(path: str, data: bytes | None = None) -> ReadResult:
+    """Read a Wavefront OBJ file into parts, one per (object/group, material) run (see the module docstring).
+
+    ``data`` is the file's bytes when the caller has read them already.
+    """
     where = path
-    try:
-        text = Path(path).read_text(encoding="utf-8", errors="replace")
-    except OSError as exc:
-        raise ThickbakeError(f"cannot read the file ({exc.strerror or exc})", path=where, fix="check the path") from None
+    text = (data if data is not None else read_regular_file(path)).decode("utf-8", errors="replace")
     positions, texcoords, normals = [], [], []
     corners: list[tuple] = []   # per triangle: (v0, v1, v2, t0, t1, t2, n0, n1, n2, part, material)
     part_names: dict[str, int] = {}

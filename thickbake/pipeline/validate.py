@@ -1,0 +1,542 @@
+"""Input checks done before a mesh file reaches the loader: what may be opened, how much is read,
+and the structure trimesh leaves unchecked.
+
+Every check here turns a hostile or broken file into one :class:`ThickbakeError` naming the file,
+the line or element where known, and the fix — never a hang, a traceback or a silently wrong mesh.
+
+Limits (README, "What input is refused")
+-----------------------------------------
+* Only regular files are opened: a folder, FIFO (named pipe), device or socket named like a mesh is
+  refused from ``os.stat`` alone, so nothing blocks waiting for a writer.  The file is then opened
+  with ``O_NONBLOCK`` and checked again through its descriptor, so a file swapped for a FIFO between
+  the two checks cannot hang the load either.
+* :data:`MAX_FILE_BYTES` per file (the mesh and each external glTF buffer): larger files are
+  refused before a byte is read.
+* :data:`MAX_FACES` triangles and :data:`MAX_VERTICES` vertices, read from the file's header or a
+  cheap pre-scan before the loader allocates anything.
+* glTF buffers and images must lie inside the asset's own folder: ``..``, absolute paths and
+  ``file:``/``http:`` URIs fail the asset.  :class:`ConfinedResolver` is handed to trimesh so that
+  no other file can be opened, and it never substitutes a same-named file from elsewhere.
+"""
+
+from __future__ import annotations
+
+import base64
+import binascii
+import json
+import os
+import re
+import stat
+import struct
+from pathlib import Path
+from urllib.parse import unquote, urlsplit
+
+import numpy as np
+
+from thickbake.errors import ThickbakeError
+
+#: Largest mesh file (and external glTF buffer) accepted, bytes.  A 10-million-triangle OBJ with
+#: UVs and normals is about 500 MB of text; loading it needs several GB, so larger files are far
+#: outside what a CPU bake handles and most likely not meshes at all.
+MAX_FILE_BYTES = 512 * 1024**2
+#: Most triangles accepted in one asset.  The load keeps ~400 bytes per triangle (corner positions,
+#: UVs and normals in float64, the merged trace mesh, the edge tables), so 10 million need ~4 GB.
+MAX_FACES = 10_000_000
+#: Most vertices accepted in one asset (seam splits make a mesh hold up to 3 per triangle).
+MAX_VERTICES = 3 * MAX_FACES
+#: The OBJ pre-scan reads this many bytes at a time, so its temporaries stay bounded (~10 x this).
+_OBJ_CHUNK_BYTES = 8 * 1024**2
+
+_KINDS = ((stat.S_ISFIFO, "a FIFO (named pipe)"), (stat.S_ISCHR, "a character device"),
+          (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
+_REEXPORT = "re-export it from your modelling tool"
+
+
+def _mb(n: int) -> str:
+    return f"{n / 1024**2:.0f} MB"
+
+
+def check_regular_file(path: str | os.PathLike, what: str = "mesh file", max_bytes: int = MAX_FILE_BYTES) -> os.stat_result:
+    """Refuse anything but an existing regular file of at most ``max_bytes`` — without opening it.
+
+    Raises
+    ------
+    ThickbakeError
+        Missing file, dangling link, folder, FIFO, device, socket or a file over the cap.
+    """
+    try:
+        info = os.stat(path)  # follows links; never opens, so a FIFO cannot block here
+    except FileNotFoundError:
+        if os.path.islink(path):
+            raise ThickbakeError(f"the {what} is a link to a missing file", path=path,
+                                 fix="point the link at an existing file or delete it") from None
+        raise ThickbakeError("no such file", path=path, fix="check the path") from None
+    except OSError as exc:
+        raise ThickbakeError(f"cannot read the {what} ({exc.strerror or type(exc).__name__})", path=path,
+                             fix="check the path and its permissions") from None
+    if stat.S_ISDIR(info.st_mode):
+        raise ThickbakeError("is a folder, not a mesh file", path=path,
+                             fix="give a mesh file, or use 'thickbake batch' for folders")
+    if not stat.S_ISREG(info.st_mode):
+        kind = next((name for test, name in _KINDS if test(info.st_mode)), "not a regular file")
+        raise ThickbakeError(f"is {kind}, not a regular file", path=path,
+                             fix=f"give the {what} itself (a regular file on disk)")
+    if info.st_size > max_bytes:
+        raise ThickbakeError(f"the {what} is {_mb(info.st_size)}, over the {_mb(max_bytes)} limit", path=path,
+                             fix="decimate the mesh or split it into several assets")
+    return info
+
+
+def read_regular_file(path: str | os.PathLike, what: str = "mesh file", max_bytes: int = MAX_FILE_BYTES) -> bytes:
+    """All bytes of a regular file of at most ``max_bytes``; never blocks on a FIFO or device."""
+    check_regular_file(path, what, max_bytes)
+    try:
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+    except OSError as exc:
+        raise ThickbakeError(f"cannot open the {what} ({exc.strerror or type(exc).__name__})", path=path,
+                             fix="check its permissions") from None
+    try:
+        info = os.fstat(fd)
+        if not stat.S_ISREG(info.st_mode):  # replaced between the stat and the open
+            raise ThickbakeError("is not a regular file", path=path, fix=f"give the {what} itself")
+        chunks, total = [], 0
+        while True:
+            block = os.read(fd, 1 << 20)
+            if not block:
+                break
+            total += len(block)
+            if total > max_bytes:
+                raise ThickbakeError(f"the {what} grew over the {_mb(max_bytes)} limit while it was read", path=path,
+                                     fix="bake it once it is completely written")
+            chunks.append(block)
+    except OSError as exc:
+        raise ThickbakeError(f"cannot read the {what} ({exc.strerror or type(exc).__name__})", path=path,
+                             fix="check the disk and the file's permissions") from None
+    finally:
+        os.close(fd)
+    return b"".join(chunks)
+
+
+# ---------------------------------------------------------------------------- confinement
+def confined_path(folder: str | os.PathLike, uri: str, where: str | os.PathLike) -> Path:
+    """The file a relative glTF URI names inside ``folder``, or a ThickbakeError if it escapes.
+
+    ``..`` components, absolute paths, drive letters and URI schemes (``file:``, ``http:``) are
+    refused; so is a link that leads outside the folder.
+    """
+    fix = "keep buffers and textures in the asset's folder (or a folder below it), referenced by relative paths"
+    if not isinstance(uri, str) or not uri:
+        raise ThickbakeError(f"a URI {uri!r} is not a file name", path=where, fix=fix)
+    parts = urlsplit(uri)
+    if parts.scheme or parts.netloc:
+        raise ThickbakeError(f"the URI {uri!r} is not a relative file name", path=where, fix=fix)
+    name = unquote(parts.path)
+    pure = Path(name)
+    if not name or pure.is_absolute() or name.startswith(("/", "\\")) or ".." in re.split(r"[/\\]", name) or "\x00" in name:
+        raise ThickbakeError(f"the URI {uri!r} points outside the asset's folder", path=where, fix=fix)
+    root = Path(os.path.realpath(folder))
+    target = Path(os.path.realpath(root / name))
+    if target != root and root not in target.parents:
+        raise ThickbakeError(f"the URI {uri!r} leads outside the asset's folder (through a link)", path=where, fix=fix)
+    return root / name
+
+
+def _resolver_class():
+    import trimesh.resolvers
+
+    class ConfinedResolver(trimesh.resolvers.Resolver):
+        """A trimesh resolver that serves only regular files inside one folder (no fallbacks)."""
+
+        def __init__(self, folder, where):
+            self.folder = str(folder)
+            self.where = str(where)
+
+        def get(self, name):
+            path = confined_path(self.folder, name, self.where)
+            return read_regular_file(path, what=f"file {name!r} that the asset refers to")
+
+        def keys(self):
+            return []
+
+        def write(self, name, data):
+            raise ThickbakeError("the loader tried to write a file", path=self.where, fix="report this as a bug")
+
+        def namespaced(self, namespace):
+            return ConfinedResolver(os.path.join(self.folder, namespace), self.where)
+
+    return ConfinedResolver
+
+
+def confined_resolver(folder, where):
+    """A :class:`trimesh.resolvers.Resolver` that opens only regular files inside ``folder``."""
+    return _resolver_class()(folder, where)
+
+
+# ---------------------------------------------------------------------------- OBJ
+def check_obj(data: bytes, where) -> bytes:
+    """Pre-scan OBJ text for what trimesh accepts silently; returns UTF-8 bytes for the loader.
+
+    Checks, in bounded memory (chunks of :data:`_OBJ_CHUNK_BYTES`, numpy on the bytes): no binary
+    data, every ``v``/``vn`` line has 3 numbers and every ``vt`` line 2, every ``f`` line has at least
+    three corners whose vertex index is a whole number ≠ 0 within the vertices of the file (negative
+    indices count back from the last vertex defined before the line), and the counts stay under
+    :data:`MAX_VERTICES`/:data:`MAX_FACES`.
+    """
+    if b"\x00" in data:
+        raise ThickbakeError("holds binary data, not OBJ text", path=where,
+                             fix="give a text OBJ file, or rename the file to its real type (.glb, .ply, ...)")
+    try:
+        data.decode("utf-8")
+    except UnicodeDecodeError:
+        # names and comments in a legacy 8-bit encoding: numbers are ASCII either way
+        data = data.decode("latin-1").encode("utf-8")
+    vertices = 0
+    triangles = 0
+    max_index, max_line = 0, 0
+    line_base = 0
+    start = 0
+    size = len(data)
+    while start < size:
+        end = data.rfind(b"\n", start, min(size, start + _OBJ_CHUNK_BYTES)) + 1 if start + _OBJ_CHUNK_BYTES < size else size
+        if end <= start:
+            end = min(size, data.find(b"\n", start) + 1 or size)
+        chunk = np.frombuffer(data, dtype=np.uint8, count=end - start, offset=start)
+        v, t, hi, hi_line, lines = _scan_obj_chunk(chunk, vertices, line_base, where)
+        vertices += v
+        triangles += t
+        if hi > max_index:
+            max_index, max_line = hi, hi_line
+        line_base += lines
+        if vertices > MAX_VERTICES or triangles > MAX_FACES:
+            raise ThickbakeError(f"has over {MAX_VERTICES:,} vertices or {MAX_FACES:,} triangles (the limit)", path=where,
+                                 fix="decimate the mesh or split it into several assets")
+        start = end
+    if max_index > vertices:
+        raise ThickbakeError(f"line {max_line}: a face refers to vertex {max_index} but the file defines only "
+                             f"{vertices}", path=where, fix=_REEXPORT)
+    return data
+
+
+def _scan_obj_chunk(chunk: np.ndarray, vertices_before: int, line_base: int, where):
+    """One chunk of whole lines: (vertices, triangles, largest index, its line, line count)."""
+    nl = np.flatnonzero(chunk == 10)
+    ends = nl if (len(chunk) and chunk[-1] == 10) else np.append(nl, len(chunk))
+    starts = np.concatenate(([0], ends[:-1] + 1))
+    n_lines = len(ends)
+    line_of_byte = np.repeat(np.arange(n_lines, dtype=np.int32), ends - starts + 1)[: len(chunk)]
+    # a '#' starts a comment: only what comes before the first one on a line counts
+    first_hash = ends.copy()
+    hashes = np.flatnonzero(chunk == ord("#"))
+    if len(hashes):
+        np.minimum.at(first_hash, line_of_byte[hashes], hashes)
+    space = (chunk == 32) | ((chunk >= 9) & (chunk <= 13))
+    token_start = ~space
+    token_start[1:] &= space[:-1]
+    token_start &= np.arange(len(chunk)) < first_hash[line_of_byte]
+    tokens = np.bincount(line_of_byte[token_start], minlength=n_lines)
+    padded = np.concatenate((chunk, np.zeros(2, np.uint8)))
+    c0, c1, c2 = padded[starts], padded[starts + 1], padded[starts + 2]
+    blank1 = (c1 == 32) | (c1 == 9)
+    blank2 = (c2 == 32) | (c2 == 9)
+    is_v = (c0 == ord("v")) & blank1
+    is_vt = (c0 == ord("v")) & (c1 == ord("t")) & blank2
+    is_vn = (c0 == ord("v")) & (c1 == ord("n")) & blank2
+    is_f = (c0 == ord("f")) & blank1
+    for mask, need, what in ((is_v, 4, "a vertex line 'v' needs 3 numbers"),
+                             (is_vt, 3, "a texture coordinate line 'vt' needs 2 numbers"),
+                             (is_vn, 4, "a normal line 'vn' needs 3 numbers"),
+                             (is_f, 4, "a face line 'f' needs at least 3 corners")):
+        short = np.flatnonzero(mask & (tokens < need))
+        if len(short):
+            raise ThickbakeError(f"line {line_base + short[0] + 1}: {what}, it has {tokens[short[0]] - 1}",
+                                 path=where, fix=_REEXPORT)
+    n_vertices = int(is_v.sum())
+    triangles = int((tokens[is_f] - 3).sum())
+    corner = token_start & is_f[line_of_byte]
+    corner[starts[is_f]] = False  # the 'f' keyword itself
+    pos = np.flatnonzero(corner)
+    if len(pos) == 0:
+        return n_vertices, triangles, 0, 0, n_lines
+    values, ok = _parse_ints(padded, pos)
+    lines_of_corner = line_of_byte[pos]
+    if not ok.all():
+        line = line_base + lines_of_corner[np.argmin(ok)] + 1
+        raise ThickbakeError(f"line {line}: a face corner is not a vertex number (a whole number of at most 18 digits)", path=where,
+                             fix=_REEXPORT)
+    zero = np.flatnonzero(values == 0)
+    if len(zero):
+        raise ThickbakeError(f"line {line_base + lines_of_corner[zero[0]] + 1}: a face refers to vertex 0, but OBJ "
+                             "numbers vertices from 1", path=where, fix=_REEXPORT)
+    v_before = vertices_before + np.cumsum(is_v) - is_v  # vertices defined before each line
+    neg = values < 0
+    back = np.flatnonzero(neg & (-values > v_before[lines_of_corner]))
+    if len(back):
+        k = back[0]
+        raise ThickbakeError(f"line {line_base + lines_of_corner[k] + 1}: a face refers to vertex {values[k]}, "
+                             f"but only {v_before[lines_of_corner[k]]} are defined before it", path=where,
+                             fix=_REEXPORT)
+    hi, hi_line = 0, 0
+    if (~neg).any():
+        k = int(np.argmax(np.where(neg, 0, values)))
+        hi, hi_line = int(values[k]), int(line_base + lines_of_corner[k] + 1)
+    return n_vertices, triangles, hi, hi_line, n_lines
+
+
+def _parse_ints(padded: np.ndarray, pos: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Signed decimal integers starting at byte positions ``pos``; (values int64, parsed ok)."""
+    sign = np.where(padded[pos] == ord("-"), -1, 1)
+    at = pos + (padded[pos] == ord("-"))
+    values = np.zeros(len(pos), np.int64)
+    alive = np.ones(len(pos), bool)
+    digits = np.zeros(len(pos), np.int64)
+    limit = len(padded) - 1
+    for _ in range(18):  # 18 digits fit in int64; longer numbers are refused
+        c = padded[np.minimum(at, limit)].astype(np.int64)
+        is_digit = alive & (c >= 48) & (c <= 57) & (at < limit)
+        values = np.where(is_digit, values * 10 + (c - 48), values)
+        digits += is_digit
+        alive = is_digit
+        at = at + is_digit
+        if not alive.any():
+            break
+    c = padded[np.minimum(at, limit)]
+    # a corner is 'v', 'v/t', 'v//n' or 'v/t/n': after the digits comes '/', a blank or the line end
+    terminated = ~alive & np.isin(c, (47, 32, 9, 13, 10, 11, 12, 35, 0))
+    return sign * values, (digits > 0) & terminated
+
+
+# ---------------------------------------------------------------------------- PLY
+_PLY_TYPES = {"char": 1, "int8": 1, "uchar": 1, "uint8": 1, "short": 2, "int16": 2, "ushort": 2, "uint16": 2,
+              "int": 4, "int32": 4, "uint": 4, "uint32": 4, "float": 4, "float32": 4, "double": 8, "float64": 8}
+
+
+def check_ply(data: bytes, where) -> None:
+    """Check a PLY header and that the file can hold the element counts it announces."""
+    if not data.startswith(b"ply") or data[3:4] not in (b"\n", b"\r"):
+        raise ThickbakeError("does not start with the PLY header ('ply')", path=where,
+                             fix="give a PLY file, or rename the file to its real type")
+    end = data.find(b"end_header", 0, 1 << 16)
+    if end < 0:
+        raise ThickbakeError("the PLY header has no 'end_header' in its first 64 KB", path=where, fix=_REEXPORT)
+    try:
+        header = data[:end].decode("ascii").splitlines()
+    except UnicodeDecodeError:
+        raise ThickbakeError("the PLY header is not ASCII text", path=where, fix=_REEXPORT) from None
+    body_start = data.find(b"\n", end) + 1 or len(data)
+    body = len(data) - body_start
+    fmt = None
+    elements: list[list] = []  # [name, count, fixed bytes, list properties]
+    for number, line in enumerate(header, start=1):
+        words = line.split()
+        if not words:
+            continue
+        try:
+            if words[0] == "format":
+                fmt = words[1]
+            elif words[0] == "element":
+                count = int(words[2])
+                if count < 0:
+                    raise ValueError
+                elements.append([words[1], count, 0, 0])
+            elif words[0] == "property":
+                if not elements:
+                    raise ValueError
+                if words[1] == "list":
+                    if words[2] not in _PLY_TYPES or words[3] not in _PLY_TYPES:
+                        raise ValueError
+                    elements[-1][3] += _PLY_TYPES[words[2]]
+                else:
+                    if words[1] not in _PLY_TYPES:
+                        raise ValueError
+                    elements[-1][2] += _PLY_TYPES[words[1]]
+        except (ValueError, IndexError):
+            raise ThickbakeError(f"PLY header line {number} is not valid ({line.strip()[:60]!r})", path=where,
+                                 fix=_REEXPORT) from None
+    if fmt not in ("ascii", "binary_little_endian", "binary_big_endian"):
+        raise ThickbakeError(f"unknown PLY format {fmt!r}", path=where, fix=_REEXPORT)
+    counts = {name: count for name, count, _, _ in elements}
+    if counts.get("vertex", 0) > MAX_VERTICES or counts.get("face", 0) > MAX_FACES:
+        raise ThickbakeError(f"the PLY header announces {counts.get('vertex', 0):,} vertices and "
+                             f"{counts.get('face', 0):,} faces, over the limit of {MAX_VERTICES:,} and {MAX_FACES:,}",
+                             path=where, fix="decimate the mesh or split it into several assets")
+    if fmt == "ascii":
+        lines = data.count(b"\n", body_start) + 1
+        need = sum(count for _, count, _, _ in elements)
+        if need > lines:
+            raise ThickbakeError(f"the PLY header announces {need:,} element lines but the file has {lines:,}",
+                                 path=where, fix="the file is cut short: " + _REEXPORT)
+    else:
+        need = sum(count * (fixed + lists) for _, count, fixed, lists in elements)
+        if need > body:
+            raise ThickbakeError(f"the PLY header announces at least {need:,} bytes of data but the file holds "
+                                 f"{body:,}", path=where, fix="the file is cut short: " + _REEXPORT)
+
+
+# ---------------------------------------------------------------------------- glTF / GLB
+_COMPONENT_BYTES = {5120: 1, 5121: 1, 5122: 2, 5123: 2, 5125: 4, 5126: 4}
+_TYPE_COMPONENTS = {"SCALAR": 1, "VEC2": 2, "VEC3": 3, "VEC4": 4, "MAT2": 4, "MAT3": 9, "MAT4": 16}
+
+
+def check_glb(data: bytes, where) -> tuple[dict, int]:
+    """Check a GLB container (glTF 2.0 §4.4) and its JSON; returns (document, BIN chunk length)."""
+    fix = "the file is damaged or not a GLB: " + _REEXPORT
+    if len(data) < 20:
+        raise ThickbakeError(f"is {len(data)} bytes, too short for a GLB file", path=where, fix=fix)
+    magic, version, length = struct.unpack_from("<4sII", data, 0)
+    if magic != b"glTF":
+        raise ThickbakeError("does not start with the GLB magic 'glTF'", path=where,
+                             fix="give a binary glTF file, or rename the file to its real type (.gltf, .obj, ...)")
+    if version != 2:
+        raise ThickbakeError(f"is GLB version {version}; only glTF 2.0 is read", path=where, fix="export as glTF 2.0")
+    if length != len(data):
+        raise ThickbakeError(f"the GLB header gives a length of {length:,} bytes but the file has {len(data):,}",
+                             path=where, fix=fix)
+    chunk_length, chunk_type = struct.unpack_from("<I4s", data, 12)
+    if chunk_type != b"JSON" or 20 + chunk_length > len(data):
+        raise ThickbakeError("the GLB's first chunk is not a complete JSON chunk", path=where, fix=fix)
+    document = _parse_json(data[20:20 + chunk_length], where)
+    bin_length = 0
+    at = 20 + chunk_length
+    if at + 8 <= len(data):
+        bin_size, bin_type = struct.unpack_from("<I4s", data, at)
+        if bin_type == b"BIN\x00":
+            if at + 8 + bin_size > len(data):
+                raise ThickbakeError("the GLB's binary chunk runs past the end of the file", path=where, fix=fix)
+            bin_length = bin_size
+    return document, bin_length
+
+
+def _parse_json(blob: bytes, where) -> dict:
+    try:
+        document = json.loads(blob.decode("utf-8"))
+    except UnicodeDecodeError:
+        raise ThickbakeError("the glTF JSON is not UTF-8 text", path=where, fix=_REEXPORT) from None
+    except ValueError as exc:
+        line = getattr(exc, "lineno", None)
+        place = f" at line {line}, column {exc.colno}" if line else ""
+        raise ThickbakeError(f"the glTF JSON is broken{place} ({getattr(exc, 'msg', exc)})", path=where,
+                             fix="repair the JSON or " + _REEXPORT) from None
+    except RecursionError:
+        raise ThickbakeError("the glTF JSON is nested too deeply", path=where, fix=_REEXPORT) from None
+    if not isinstance(document, dict):
+        raise ThickbakeError("the glTF JSON is not an object", path=where, fix=_REEXPORT)
+    return document
+
+
+def check_gltf(data: bytes, where) -> None:
+    """Check a ``.gltf`` file's JSON, its buffers and images (confined to its folder)."""
+    check_gltf_document(_parse_json(data, where), where, folder=Path(where).parent, bin_length=None)
+
+
+def check_gltf_document(doc: dict, where, folder, bin_length: int | None) -> None:
+    """Check what trimesh does not: buffers exist with the bytes they claim, buffer views and accessors
+    lie inside them, indices are valid, and every external file is inside ``folder``.
+
+    ``bin_length`` is the GLB binary chunk's length (None for a ``.gltf``).
+    """
+    def fail(element: str, message: str, fix: str = _REEXPORT):
+        raise ThickbakeError(f"{element}: {message}", path=where, fix=fix)
+
+    def items(key):
+        value = doc.get(key, [])
+        if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
+            fail(key, "is not a list of objects")
+        return value
+
+    def whole(value, element, name, low=0):
+        if isinstance(value, bool) or not isinstance(value, int) or value < low:
+            fail(element, f"{name} {value!r} is not a whole number ≥ {low}")
+        return value
+
+    asset = doc.get("asset")
+    if not isinstance(asset, dict) or not str(asset.get("version", "")).startswith("2"):
+        fail("asset", "no glTF 2.0 'asset.version'", "export as glTF 2.0")
+    buffers = items("buffers")
+    sizes = []
+    for i, buffer in enumerate(buffers):
+        element = f"buffers[{i}]"
+        length = whole(buffer.get("byteLength"), element, "byteLength", 1)
+        uri = buffer.get("uri")
+        if uri is None:
+            if bin_length is None or i != 0:
+                fail(element, "has no uri and there is no GLB binary chunk")
+            available = bin_length
+        elif not isinstance(uri, str):
+            fail(element, "uri is not a string")
+        elif uri.startswith("data:"):
+            comma = uri.find(",")
+            if comma < 0 or ";base64" not in uri[:comma]:
+                fail(element, "data URI is not base64")
+            try:
+                available = len(base64.b64decode(uri[comma + 1:], validate=True))
+            except (binascii.Error, ValueError):
+                fail(element, "data URI holds invalid base64")
+        else:
+            path = confined_path(folder, uri, where)
+            available = check_regular_file(path, what=f"buffer {uri!r} of the asset").st_size
+        if available < length:
+            fail(element, f"byteLength is {length:,} but only {available:,} bytes are there")
+        sizes.append(length)
+    views = items("bufferViews")
+    for i, view in enumerate(views):
+        element = f"bufferViews[{i}]"
+        b = whole(view.get("buffer"), element, "buffer")
+        if b >= len(sizes):
+            fail(element, f"refers to buffer {b}, but there are {len(sizes)}")
+        offset = whole(view.get("byteOffset", 0), element, "byteOffset")
+        length = whole(view.get("byteLength"), element, "byteLength", 1)
+        if offset + length > sizes[b]:
+            fail(element, f"bytes {offset:,}..{offset + length:,} lie beyond buffer {b} ({sizes[b]:,} bytes)")
+        if "byteStride" in view:
+            whole(view["byteStride"], element, "byteStride", 4)
+    accessors = items("accessors")
+    counts = []
+    for i, acc in enumerate(accessors):
+        element = f"accessors[{i}]"
+        count = whole(acc.get("count"), element, "count", 1)
+        if acc.get("componentType") not in _COMPONENT_BYTES:
+            fail(element, f"componentType {acc.get('componentType')!r} is not a glTF component type")
+        if acc.get("type") not in _TYPE_COMPONENTS:
+            fail(element, f"type {acc.get('type')!r} is not a glTF accessor type")
+        if count > MAX_VERTICES * 3:
+            fail(element, f"count {count:,} is over the limit", "decimate the mesh or split it into several assets")
+        counts.append(count)
+        if "bufferView" not in acc:
+            continue  # all zeros (or sparse): nothing to read
+        v = whole(acc.get("bufferView"), element, "bufferView")
+        if v >= len(views):
+            fail(element, f"refers to bufferView {v}, but there are {len(views)}")
+        element_bytes = _COMPONENT_BYTES[acc["componentType"]] * _TYPE_COMPONENTS[acc["type"]]
+        stride = views[v].get("byteStride") or element_bytes
+        offset = whole(acc.get("byteOffset", 0), element, "byteOffset")
+        end = offset + stride * (count - 1) + element_bytes
+        if end > views[v]["byteLength"]:
+            fail(element, f"{count:,} elements from byte {offset:,} need {end:,} bytes, but bufferView {v} has "
+                          f"{views[v]['byteLength']:,}")
+    triangles = 0
+    for m, mesh in enumerate(items("meshes")):
+        primitives = mesh.get("primitives", [])
+        if not isinstance(primitives, list):
+            fail(f"meshes[{m}]", "primitives is not a list")
+        for p, prim in enumerate(primitives):
+            element = f"meshes[{m}].primitives[{p}]"
+            if not isinstance(prim, dict) or not isinstance(prim.get("attributes", {}), dict):
+                fail(element, "is not a primitive object")
+            refs = list(prim.get("attributes", {}).values()) + ([prim["indices"]] if "indices" in prim else [])
+            for ref in refs:
+                whole(ref, element, "accessor")
+                if ref >= len(accessors):
+                    fail(element, f"refers to accessor {ref}, but there are {len(accessors)}")
+            if "indices" in prim:
+                triangles += counts[prim["indices"]] // 3
+            elif "POSITION" in prim.get("attributes", {}):
+                triangles += counts[prim["attributes"]["POSITION"]] // 3
+    if triangles > MAX_FACES:
+        fail("meshes", f"{triangles:,} triangles, over the limit of {MAX_FACES:,}",
+             "decimate the mesh or split it into several assets")
+    for i, image in enumerate(items("images")):
+        uri = image.get("uri")
+        if isinstance(uri, str) and not uri.startswith("data:"):
+            confined_path(folder, uri, where)
+        elif uri is not None and not isinstance(uri, str):
+            fail(f"images[{i}]", "uri is not a string")
