@@ -168,5 +168,10 @@ def test_other_user_errors(maps, tmp_path, capsys):
     (tmp_path / "wrong.png").write_bytes((maps / "a16.png").read_bytes())
     (tmp_path / "wrong.json").write_text(json.dumps(side))
     code, _, err = run_cli(capsys, tmp_path / "wrong.png", maps / "a16.png")
+    assert code == 2 and "do not belong together" in err and len(err.strip().splitlines()) == 1
+    # the same without the map checksum (a sidecar of an older version): the code range catches it
+    side.pop("map_sha256")
+    (tmp_path / "wrong.json").write_text(json.dumps(side))
+    code, _, err = run_cli(capsys, tmp_path / "wrong.png", maps / "a16.png")
     assert code == 2 and "codes go to 255" in err
     assert not list(tmp_path.glob(".*.tmp"))

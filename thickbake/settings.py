@@ -21,6 +21,7 @@ import dataclasses
 import hashlib
 import json
 import math
+import numbers
 import os
 from dataclasses import dataclass, fields
 from typing import Any, Mapping
@@ -40,6 +41,15 @@ ORDERS = ("morton", "rows")
 MEMORY_CAP_BYTES = 8 * 1024**3
 #: Largest accepted side of a map, in texels.
 MAX_SIDE = 32768
+#: Largest accepted seed: seeds are 64-bit unsigned integers (0 .. 2**64 - 1).
+MAX_SEED = 2**64 - 1
+#: Accepted ``reach`` and ``attenuation_distance``, as multiples of the bounding-box diagonal.  Outside
+#: this range every texel reads the same value (all misses, or all hits at the start), and the
+#: float32 distances the ray engine returns lose all resolution or overflow.
+LENGTH_RANGE_DIAGONALS = (1e-6, 1e6)
+#: Accepted non-zero ``bias``, as multiples of the diagonal: below 1e-9 it is under float32's
+#: resolution of any position on the mesh (the same as 0); above 1 every ray starts outside the mesh.
+BIAS_RANGE_DIAGONALS = (1e-9, 1.0)
 
 
 def usable_cores() -> int:
@@ -76,8 +86,8 @@ def parse_size(text: str | int | tuple | list) -> tuple[int, int]:
         if len(text) != 2:
             raise ThickbakeError(f"size {text!r} must be N or [WIDTH, HEIGHT]", fix="e.g. size = 1024")
         width, height = text
-    elif isinstance(text, int) and not isinstance(text, bool):
-        width = height = text
+    elif _is_int(text):
+        width = height = int(text)
     elif isinstance(text, str):
         parts = text.lower().replace("×", "x").split("x")
         try:
@@ -93,7 +103,7 @@ def parse_size(text: str | int | tuple | list) -> tuple[int, int]:
     else:
         raise ThickbakeError(f"size {text!r} is not a number", fix="give N or WIDTHxHEIGHT, e.g. 1024")
     for side in (width, height):
-        if isinstance(side, bool) or not isinstance(side, int) or side <= 0:
+        if not _is_int(side) or side <= 0:
             raise ThickbakeError(f"size {text!r} must be positive whole numbers of texels", fix="e.g. 1024 or 2048x1024")
         if side > MAX_SIDE:
             raise ThickbakeError(f"size {text!r} is larger than {MAX_SIDE} texels per side", fix="bake a smaller map")
@@ -213,15 +223,16 @@ class BakeSettings:
         if not isinstance(self.invert, bool):
             raise _bad("invert", self.invert, "true or false")
         _check_int(self, "supersample", 1, 16)
-        if self.pad is not None and self.pad != "fill":
+        if self.pad is not None and not (isinstance(self.pad, str) and self.pad == "fill"):
             if isinstance(self.pad, str) and self.pad.isdigit():
                 object.__setattr__(self, "pad", int(self.pad))
-            if isinstance(self.pad, bool) or not isinstance(self.pad, int) or self.pad < 0:
-                raise _bad("pad", self.pad, "a number of texels ≥ 0 or 'fill'")
-        if self.bits not in (8, 16) or isinstance(self.bits, bool):
+            if not _is_int(self.pad) or not 0 <= self.pad <= MAX_SIDE:
+                raise _bad("pad", self.pad, f"a number of texels from 0 to {MAX_SIDE} or 'fill'")
+            object.__setattr__(self, "pad", int(self.pad))
+        if not _is_int(self.bits) or self.bits not in (8, 16):
             raise _bad("bits", self.bits, "8 or 16")
-        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
-            raise _bad("seed", self.seed, "a whole number ≥ 0")
+        object.__setattr__(self, "bits", int(self.bits))
+        _check_int(self, "seed", 0, MAX_SEED)
         if self.bias is not None:
             _check_float(self, "bias", 0.0, math.inf, inclusive_low=True)
         _check_choice(self, "sequence", SEQUENCES)
@@ -251,7 +262,11 @@ class BakeSettings:
         return self.size[1]
 
     def resolve(self, diagonal: float) -> "BakeSettings":
-        """Fill the mesh-relative defaults from the bounding-box diagonal (scene units)."""
+        """Fill the mesh-relative defaults from the bounding-box diagonal (scene units).
+
+        Lengths given explicitly must lie in :data:`LENGTH_RANGE_DIAGONALS` (reach, attenuation
+        distance) or be 0 or in :data:`BIAS_RANGE_DIAGONALS` (bias) times the diagonal.
+        """
         if not (diagonal > 0 and math.isfinite(diagonal)):
             raise ThickbakeError("the mesh's bounding box is empty", fix="check the file has geometry")
         changes: dict[str, Any] = {}
@@ -267,7 +282,21 @@ class BakeSettings:
             changes["attenuation_distance"] = float(diagonal * ATTENUATION_DIAGONAL_FRACTION)
         if self.pad is None:
             changes["pad"] = default_pad(*self.size)
-        return dataclasses.replace(self, **changes) if changes else self
+        resolved = dataclasses.replace(self, **changes) if changes else self
+        for name, (low, high) in (("reach", LENGTH_RANGE_DIAGONALS), ("attenuation_distance", LENGTH_RANGE_DIAGONALS),
+                                  ("bias", BIAS_RANGE_DIAGONALS)):
+            value = getattr(resolved, name)
+            if value is None or (name == "bias" and value == 0):
+                continue
+            if not (low * diagonal <= value <= high * diagonal):
+                zero = "0 or " if name == "bias" else ""
+                given = getattr(self, name)
+                raise ThickbakeError(
+                    f"setting {name} = {given if isinstance(given, str) else format(value, 'g')} does not fit a mesh "
+                    f"{diagonal:.4g} scene units across",
+                    fix=f"use {zero}{low:g} to {high:g} times the bounding-box diagonal, i.e. "
+                        f"{low * diagonal:.3g} to {high * diagonal:.3g} scene units (or leave it out for the default)")
+        return resolved
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able dict of every field."""
@@ -393,7 +422,7 @@ FIT_PERCENTILE = 99.5
 
 def parse_reach(value) -> float | str | None:
     """A reach as given: a length in scene units, ``"N%"`` of the bounding-box diagonal, or ``"fit"``."""
-    if value is None or (isinstance(value, (int, float)) and not isinstance(value, bool)):
+    if value is None or _is_real(value):
         return value
     if isinstance(value, str):
         text = value.strip().lower()
@@ -441,7 +470,10 @@ def _check_medium(obj) -> None:
 
 
 def _bad(name: str, value: Any, allowed: str) -> ThickbakeError:
-    return ThickbakeError(f"setting {name} = {value!r} is not allowed", fix=f"use {allowed}")
+    shown = repr(value)
+    if len(shown) > 40:
+        shown = shown[:30] + "..." + shown[-6:]
+    return ThickbakeError(f"setting {name} = {shown} is not allowed", fix=f"use {allowed}")
 
 
 def _check_choice(obj, name: str, choices: tuple[str, ...]) -> None:
@@ -450,15 +482,41 @@ def _check_choice(obj, name: str, choices: tuple[str, ...]) -> None:
         raise _bad(name, value, " or ".join(repr(c) for c in choices))
 
 
+def _is_int(value) -> bool:
+    """A whole number: int or numpy integer, not bool (numbers.Integral covers numpy's integer scalars)."""
+    return isinstance(value, numbers.Integral) and not isinstance(value, (bool, np_bool()))
+
+
+def _is_real(value) -> bool:
+    """A real number: int, float or a numpy integer/floating scalar, not bool."""
+    return isinstance(value, numbers.Real) and not isinstance(value, (bool, np_bool()))
+
+
+def np_bool():
+    """numpy's bool scalar type, or bool when numpy is not loaded (it is never registered as a number)."""
+    import sys
+
+    numpy = sys.modules.get("numpy")
+    return numpy.bool_ if numpy is not None else bool
+
+
+def _finite(value) -> bool:
+    try:
+        return math.isfinite(value)
+    except OverflowError:  # an int too large for a float
+        return False
+
+
 def _check_int(obj, name: str, low: int, high: int) -> None:
     value = getattr(obj, name)
-    if isinstance(value, bool) or not isinstance(value, int) or not (low <= value <= high):
+    if not _is_int(value) or not (low <= value <= high):
         raise _bad(name, value, f"a whole number from {low} to {high}")
+    object.__setattr__(obj, name, int(value))
 
 
 def _check_float(obj, name: str, low: float, high: float, inclusive_low: bool) -> None:
     value = getattr(obj, name)
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value > high or value < low or (value == low and not inclusive_low):
+    if not _is_real(value) or not _finite(value) or value > high or value < low or (value == low and not inclusive_low):
         allowed = f"a number from {low:g} to {high:g}" if math.isfinite(high) else f"a finite number ≥ {low:g}"
         raise _bad(name, value, allowed)
     object.__setattr__(obj, name, float(value))
@@ -468,7 +526,7 @@ def _check_optional_positive(obj, name: str) -> None:
     value = getattr(obj, name)
     if value is None:
         return
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+    if not _is_real(value) or not _finite(value) or value <= 0:
         units = "the measure's units" if name == "target_error" else "scene units"
         raise _bad(name, value, f"a positive number in {units}")
     object.__setattr__(obj, name, float(value))

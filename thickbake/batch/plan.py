@@ -92,7 +92,6 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path, PurePosixPath
 from typing import Callable
-from urllib.parse import unquote
 
 from thickbake.version import __version__
 from thickbake.errors import ThickbakeError
@@ -178,6 +177,7 @@ class BatchPlan:
     rules: RulesFile
     jobs: list[AssetJob]
     unused_rules: list
+    warnings: list[str] = field(default_factory=list)
 
     def to_bake(self) -> list[AssetJob]:
         return [j for j in self.jobs if j.status == "bake"]
@@ -195,11 +195,14 @@ class BatchOutcome:
 
 
 # ---------------------------------------------------------------------------- planning
-def find_meshes(src: Path, out: Path | None = None) -> list[str]:
+def find_meshes(src: Path, out: Path | None = None, warnings: list[str] | None = None) -> list[str]:
     """Relative POSIX paths of the mesh files under ``src``, sorted.
 
     Hidden files and folders (name starting with ``.``) are skipped, and so is ``out`` when it lies
-    inside ``src``.  Symbolic links to folders are not followed.
+    inside ``src``.  Symbolic links to folders are not followed; a link to a file outside ``src`` is
+    skipped with a line appended to ``warnings`` (the batch opens nothing outside its folder).  A
+    link that leads nowhere, or a FIFO or device named like a mesh, is listed: its bake fails with
+    a message.
     """
     src = Path(src).resolve()
     out_resolved = Path(out).resolve() if out is not None else None
@@ -210,8 +213,21 @@ def find_meshes(src: Path, out: Path | None = None) -> list[str]:
                              and (out_resolved is None or (here / d).resolve() != out_resolved))
         for name in filenames:
             if not name.startswith(".") and os.path.splitext(name)[1].lower() in BATCH_SUFFIXES:
-                found.append((here / name).relative_to(src).as_posix())
+                rel = (here / name).relative_to(src).as_posix()
+                if not is_inside(here / name, src):
+                    if warnings is not None:
+                        warnings.append(f"{rel}: skipped, it is a link to {os.path.realpath(here / name)}, outside "
+                                        f"{src} (a batch reads nothing outside its folder; copy the file in instead)")
+                    continue
+                found.append(rel)
     return sorted(found)
+
+
+def is_inside(path: Path, folder: Path) -> bool:
+    """True when ``path``, with every link resolved (without opening anything), lies inside ``folder``."""
+    target = Path(os.path.realpath(path))
+    root = Path(os.path.realpath(folder))
+    return target == root or root in target.parents
 
 
 def map_name(rel: str, fmt: str, measure: str = "thickness") -> str:
@@ -225,24 +241,32 @@ def input_digests(path: Path) -> tuple[str, str]:
 
     A ``.gltf`` keeps its vertex data in external ``.bin`` buffers; their bytes count as input too.
     For every other file the two digests are equal.
+
+    Only regular files are read (a FIFO or device raises :class:`ThickbakeError` without being
+    opened), and a buffer is hashed only when it lies inside the ``.gltf`` file's folder: a URI that
+    escapes it (``..``, an absolute path, ``file:``, a link leading out) raises ThickbakeError, as
+    the bake would.
     """
     from thickbake.pipeline.load import file_sha256
+    from thickbake.inputs import confined_path, read_regular_file
 
-    main = file_sha256(path)
     if path.suffix.lower() != ".gltf":
+        main = file_sha256(path)
         return main, main
+    data = read_regular_file(path)
+    main = hashlib.sha256(data).hexdigest()
     try:
-        buffers = json.loads(path.read_text("utf-8")).get("buffers", [])
-    except (OSError, ValueError, AttributeError):
+        buffers = json.loads(data.decode("utf-8")).get("buffers", [])
+    except (ValueError, AttributeError, RecursionError):
         return main, main  # the bake will report the broken file
     digest = hashlib.sha256(main.encode())
     for buffer in buffers if isinstance(buffers, list) else []:
         uri = buffer.get("uri") if isinstance(buffer, dict) else None
         if not isinstance(uri, str) or uri.startswith("data:"):
             continue
-        target = path.parent / unquote(uri)
+        target = confined_path(path.parent, uri, path)
         digest.update(uri.encode())
-        digest.update(file_sha256(target).encode() if target.is_file() else b"missing")
+        digest.update(file_sha256(target).encode() if target.exists() else b"missing")
     return main, digest.hexdigest()
 
 
@@ -265,7 +289,8 @@ def plan_batch(src, out, config=None, force: bool = False) -> BatchPlan:
         raise ThickbakeError("the output folder is the source folder", path=out,
                              fix="give another folder, e.g. -o maps (it may lie inside the source folder)")
     rules = load_rules(find_rules_file(src, config))
-    rels = find_meshes(src, out)
+    warnings: list[str] = []
+    rels = find_meshes(src, out, warnings)
     src_abs = src.resolve()
     jobs = []
     for rel in rels:
@@ -281,7 +306,8 @@ def plan_batch(src, out, config=None, force: bool = False) -> BatchPlan:
     # a mesh that an asset measures in (its source or cage) is an input, not an asset of its own
     inputs = {p for job in jobs for p in job.transfer.get("source", []) + [job.transfer.get("cage")] if p}
     jobs = [job for job in jobs if job.rel not in inputs]
-    plan = BatchPlan(src=src_abs, out=out.resolve(), rules=rules, jobs=jobs, unused_rules=rules.unused_rules(rels))
+    plan = BatchPlan(src=src_abs, out=out.resolve(), rules=rules, jobs=jobs, unused_rules=rules.unused_rules(rels),
+                     warnings=warnings)
     _mark_name_clashes(plan.jobs)
     _mark_up_to_date(plan, force)
     return plan
@@ -308,8 +334,11 @@ def _transfer_digest(src: Path, inputs_sha256: str, transfer: dict) -> str:
     digest = hashlib.sha256(inputs_sha256.encode())
     for rel in transfer["source"] + ([transfer["cage"]] if transfer.get("cage") else []):
         path = src / rel
+        if not is_inside(path, src):  # a batch reads nothing outside its folder
+            raise ThickbakeError(f"the source or cage mesh {rel!r} lies outside {src}", path=path,
+                                 fix="keep the meshes an asset is measured in inside the batch's source folder")
         digest.update(rel.encode())
-        digest.update(input_digests(path)[1].encode() if path.is_file() else b"missing")
+        digest.update(input_digests(path)[1].encode() if path.exists() or path.is_symlink() else b"missing")
     return digest.hexdigest()
 
 
@@ -390,8 +419,12 @@ def _mark_each_up_to_date(plan: BatchPlan, force: bool) -> None:
             job.input_sha256, job.inputs_sha256 = input_digests(job.source)
             if job.transfer:
                 job.inputs_sha256 = _transfer_digest(plan.src, job.inputs_sha256, job.transfer)
+        except ThickbakeError as exc:
+            job.status, job.failure_kind = "failed", "user"
+            job.error = exc.one_line()
+            continue
         except OSError as exc:
-            job.status = "failed"
+            job.status, job.failure_kind = "failed", "user"
             job.error = f"{job.source}: cannot read the file ({exc.strerror or exc}); check its permissions"
             continue
         if force:
@@ -415,6 +448,8 @@ def _previous_user_failures(out: Path) -> dict[str, dict]:
     """Rows of the previous ``report.json`` that failed with a user error, by source path."""
     from thickbake.batch.report import REPORT_JSON
 
+    if not (out / REPORT_JSON).is_file():  # (never open a FIFO or a folder in its place)
+        return {}
     try:
         previous = json.loads((out / REPORT_JSON).read_text("utf-8"))
         if previous.get("thickbake_version") != __version__:
@@ -461,10 +496,11 @@ def _outdated_reason(job: AssetJob, out: Path) -> str | None:
         if not (out / map_rel).is_file():
             return "no map yet"
         try:
-            if file_sha256(out / map_rel) != batch.map_sha256:
-                return "the map does not match its sidecar"
-        except OSError:
+            digest = file_sha256(out / map_rel)
+        except (OSError, ThickbakeError):
             return "the map is unreadable"
+        if digest != batch.map_sha256 or (side.map_sha256 or digest) != digest:
+            return "the map does not match its sidecar"
         maps.append({"map": map_rel, "sidecar": PurePosixPath(map_rel).with_suffix(".json").as_posix(), "data": data,
                      "thumbnail": None})
     recorded = found[0][1].get("batch") if isinstance(found[0][1].get("batch"), dict) else {}
@@ -490,6 +526,8 @@ def _asset_sidecars(job: AssetJob, out: Path) -> list[tuple[Path, dict]]:
     except OSError:
         return []
     for side in candidates:
+        if not side.is_file():  # never open a FIFO or a folder named like a sidecar
+            continue
         try:
             data = json.loads(side.read_text("utf-8"))
         except (OSError, ValueError):
@@ -579,6 +617,8 @@ def run_batch(src, out, config=None, *, jobs: int | None = None, force: bool = F
     plan = plan_batch(src, out, config, force)
     for rule in plan.unused_rules:
         notify(f"warning: {plan.rules.path}: {rule.label()} matches no asset")
+    for text in plan.warnings:
+        notify(f"warning: {text}")
     todo = plan.to_bake()
     cores = available_cores()
     runner = None

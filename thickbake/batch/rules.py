@@ -219,25 +219,37 @@ def _check_delivery_value(key: str, value) -> str | None:
     return None
 
 
+#: A rules file is a few dozen lines; anything over this is not one.
+RULES_MAX_BYTES = 1024**2
+
+
 def find_rules_file(src: Path, config: str | os.PathLike | None) -> Path | None:
     """The rules file to use: ``config`` if given (must exist), else ``SRC/thickbake.toml`` if present."""
+    from thickbake.inputs import check_regular_file
+
     if config is not None:
         path = Path(config)
-        if not path.is_file():
-            raise ThickbakeError("no such rules file" if not path.exists() else "the rules file is a folder",
-                                 path=path, fix="give the path of a TOML rules file, or leave --config out")
+        if not path.exists() and not path.is_symlink():
+            raise ThickbakeError("no such rules file", path=path,
+                                 fix="give the path of a TOML rules file, or leave --config out")
+        check_regular_file(path, what="rules file", max_bytes=RULES_MAX_BYTES)
         return path
     path = src / DEFAULT_RULES_NAME
-    return path if path.is_file() else None
+    if not path.exists() and not path.is_symlink():
+        return None
+    check_regular_file(path, what="rules file", max_bytes=RULES_MAX_BYTES)  # never a FIFO or a folder
+    return path
 
 
 def load_rules(path: str | os.PathLike | None) -> RulesFile:
     """Read and validate a rules file; ``None`` gives the empty rules (all defaults)."""
     if path is None:
         return RulesFile()
+    from thickbake.inputs import read_regular_file
+
     path = Path(path)
     try:
-        text = path.read_bytes().decode("utf-8")
+        text = read_regular_file(path, what="rules file", max_bytes=RULES_MAX_BYTES).decode("utf-8")
     except UnicodeDecodeError:
         raise ThickbakeError("the rules file is not UTF-8 text", path=path, fix="save it as UTF-8") from None
     except OSError as exc:

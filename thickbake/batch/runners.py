@@ -21,6 +21,7 @@ import socket
 import threading
 import time
 import traceback
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Callable
 
@@ -263,6 +264,30 @@ def _pool_context():
     return multiprocessing.get_context("spawn")
 
 
+@contextmanager
+def _children_ignore_sigint():
+    """Processes started inside this block ignore Ctrl-C from their first instruction.
+
+    A terminal's Ctrl-C goes to the whole process group; the batch alone decides what it means.
+    An ignored signal stays ignored through ``exec``, and Python then installs no KeyboardInterrupt
+    handler, so the fork server (and every pool process it forks) neither dies nor prints a
+    traceback while it imports modules or unpickles a task.  Meanwhile SIGINT is also blocked in
+    this thread, so a Ctrl-C that arrives is kept pending for the batch's own handler rather than
+    dropped (unless another thread of this process takes it).  Only the main thread can do this.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    mask = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT}) if hasattr(signal, "pthread_sigmask") else None
+    handler = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, handler)
+        if mask is not None:
+            signal.pthread_sigmask(signal.SIG_SETMASK, mask)
+
+
 # ---------------------------------------------------------------------------- runners
 class WorkerDied(Exception):
     """The process running a bake died (crash, OOM killer, kill)."""
@@ -288,11 +313,20 @@ class LocalRunner:
     def submit(self, task: dict):
         if self._pool is None:
             context = _pool_context()
+            if context.get_start_method() == "forkserver":
+                from multiprocessing import forkserver
+
+                with _children_ignore_sigint():
+                    forkserver.ensure_running()  # starts the server (not waiting for its imports)
+            self._forkserver = context.get_start_method() == "forkserver"
             self._pid_queue = context.SimpleQueue()
             self._pool = cf.ProcessPoolExecutor(max_workers=self.jobs, mp_context=context,
                                                 initializer=_worker_start,
                                                 initargs=(os.getpid(), self._pid_queue))
-        return self._pool.submit(self.worker, task)
+        if self._forkserver:
+            return self._pool.submit(self.worker, task)  # forked by the server: SIGINT already ignored
+        with _children_ignore_sigint():  # spawn: the processes start here
+            return self._pool.submit(self.worker, task)
 
     def wait(self, handles, timeout: float):
         return cf.wait(handles, timeout=timeout, return_when=cf.FIRST_COMPLETED)[0]

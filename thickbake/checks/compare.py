@@ -134,6 +134,7 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
     ThickbakeError
         Missing files, a sidecar without a valid encoding, or an image that does not match it.
     """
+    from thickbake.inputs import check_regular_file
     from thickbake.maps.files import read_image
     from thickbake.maps.sidecar import read_sidecar
 
@@ -143,7 +144,9 @@ def load_map(path: str | os.PathLike) -> DecodedMap:
     if path.is_dir() or path.suffix.lower() not in (".png", ".tif", ".tiff"):
         raise ThickbakeError("is not a map (a .png or .tif written by 'thickbake bake')", path=path,
                              fix="compare two maps, e.g. thickbake compare old.png new.png")
+    check_regular_file(path, what="map")
     side = read_sidecar(path)
+    side.check_map(path)
     image = read_image(path)
     if image.ndim != 2:
         raise ThickbakeError(f"the image has {image.shape[2] if image.ndim == 3 else '?'} channels, not one",

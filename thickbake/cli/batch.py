@@ -44,6 +44,8 @@ def run(args) -> int:
         plan = plan_batch(args.src, args.output, args.config, args.force)
         for rule in plan.unused_rules:
             print_warnings([f"{rule.label()} matches no asset"], str(plan.rules.path))
+        for text in plan.warnings:
+            print(f"thickbake: warning: {one_line(text)}", file=sys.stderr)
         lines = format_plan(plan)
         for line in lines[-1:] if args.quiet else lines:
             echo(line)

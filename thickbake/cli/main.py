@@ -69,6 +69,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv=None) -> int:
     """Entry point of ``thickbake`` and ``python -m thickbake``; returns the exit code (see cli.output)."""
+    try:
+        return _main(argv)
+    except KeyboardInterrupt:  # Ctrl-C while parsing, or while an error was being reported
+        print("thickbake: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+
+
+def _main(argv) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):
@@ -96,6 +104,24 @@ def main(argv=None) -> int:
 
 
 def _stdout_broken() -> bool:
+    """True only when stdout is a pipe whose reader has gone (e.g. ``| head``).
+
+    A BrokenPipeError from anything else (a socket, a pipe to a child process) is a failure, not a
+    reason to exit quietly.  ``poll`` reports POLLERR on the write end of a pipe with no reader,
+    without writing anything; where poll is missing, a flush of stdout tells the same.
+    """
+    try:
+        fd = sys.stdout.fileno()
+    except (AttributeError, OSError, ValueError):
+        return False
+    try:
+        import select
+
+        poller = select.poll()
+        poller.register(fd, select.POLLOUT)
+        return any(events & select.POLLERR for _, events in poller.poll(0))
+    except (AttributeError, OSError, ValueError):
+        pass
     try:
         sys.stdout.flush()
     except BrokenPipeError:

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from thickbake.errors import ThickbakeError
-from thickbake.maps.sidecar import described_map, sidecar_path
+from thickbake.maps.sidecar import described_map, sidecar_path, with_map_checksum
 
 IMAGE_SUFFIXES = (".png", ".tif", ".tiff", ".exr")
 #: Permissions asked for when creating a file; the kernel takes the process umask off them (0644 under
@@ -159,9 +159,13 @@ def write_map(path: str | os.PathLike, data: bytes, sidecar: dict,
     """Write encoded map bytes, optional extra maps (path → (h, w) array: float32 TIFF, or a uint8 PNG
     mask for a ``.png`` path) and the sidecar.
 
-    Every file is encoded in memory first, then each is written atomically, the sidecar last.
+    Every file is encoded in memory first, then each is written atomically, the sidecar last.  The
+    sidecar records the map file's sha256 (``map_sha256``): a run killed between the two renames
+    leaves a new map beside the old sidecar, and :meth:`Sidecar.check_map` then refuses the pair
+    instead of decoding the new map with the old numbers.
     """
     path = Path(path)
+    sidecar = with_map_checksum(sidecar, data)  # ties the pair together
     blobs = [(path, data)]
     for extra_path, array in (extra or {}).items():
         extra_path = Path(extra_path)

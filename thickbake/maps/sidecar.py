@@ -25,7 +25,11 @@ texels), ``input`` {``file``, ``sha256``}, ``settings`` (map content), ``setting
   ``distance`` {``p50``, ``p95``, ``max``} (target-to-source distance, scene units);
   ``unprojected_mask``: file name of the 8-bit mask of the unprojected texels, when one was written;
 * ``batch``: ``source``, ``requested_settings_hash``, ``inputs_sha256``, ``rules``, ``map_sha256``
-  (what :mod:`thickbake.batch.plan` needs to tell whether the map is up to date).
+  (what :mod:`thickbake.batch.plan` needs to tell whether the map is up to date);
+* ``map_sha256``: sha256 of the map file's bytes, added by :func:`with_map_checksum` when the pair is
+  written.  The map is renamed into place before its sidecar, so a run killed between the two
+  renames leaves a new map beside the old sidecar; readers (:meth:`Sidecar.check_map`) refuse such a
+  pair instead of decoding the new map with the old numbers.
 """
 
 from __future__ import annotations
@@ -45,6 +49,8 @@ from thickbake.maps.encode import decode, decode_coefficients
 from thickbake.measures import MEASURES, Measure, measure_named
 
 SIDECAR_SUFFIX = ".json"
+#: A sidecar is a few kilobytes; anything over this is not one.
+SIDECAR_MAX_BYTES = 16 * 1024**2
 #: The integer code ranges a PNG map may have, by bit depth, and the image type each is stored in.
 CODE_MAX = {8: 255, 16: 65535}
 _CODE_DTYPE = {255: np.uint8, 65535: np.uint16}
@@ -153,6 +159,11 @@ def with_unprojected_mask(sidecar: dict, mask: str | os.PathLike) -> dict:
     return {**sidecar, "unprojected_mask": Path(mask).name}
 
 
+def with_map_checksum(sidecar: dict, map_bytes: bytes) -> dict:
+    """The sidecar recording the sha256 of the map file's bytes (``map_sha256``)."""
+    return {**sidecar, "map_sha256": hashlib.sha256(map_bytes).hexdigest()}
+
+
 def with_batch_record(sidecar: dict, record: dict, map_bytes: bytes) -> dict:
     """The sidecar with a batch's bookkeeping (``record`` plus the sha256 of the map's bytes)."""
     return {**sidecar, "batch": dict(record, map_sha256=hashlib.sha256(map_bytes).hexdigest())}
@@ -237,6 +248,8 @@ class Sidecar:
     input_sha256 : str or None
         sha256 of the mesh file baked.
     batch : BatchRecord or None
+    map_sha256 : str or None
+        sha256 of the map file the sidecar was written with (None in sidecars older than the field).
     data : dict
         Everything, as read (the bake's figures for reports).
     """
@@ -251,6 +264,26 @@ class Sidecar:
     input_sha256: str | None
     batch: BatchRecord | None
     data: dict
+    map_sha256: str | None = None
+
+    def check_map(self, map_path: str | os.PathLike) -> None:
+        """Refuse a map whose bytes are not the ones this sidecar was written with.
+
+        Raises
+        ------
+        ThickbakeError
+            The pair is inconsistent (a bake interrupted between its two renames, or a file
+            replaced): bake again.  Sidecars without ``map_sha256`` pass.
+        """
+        if self.map_sha256 is None:
+            return
+        from thickbake.inputs import read_regular_file
+
+        if hashlib.sha256(read_regular_file(map_path, what="map")).hexdigest() != self.map_sha256:
+            raise ThickbakeError(
+                f"the map and its sidecar {self.path.name} do not belong together (the map's sha256 is not the one "
+                "the sidecar records: a bake was interrupted between writing them, or one was replaced)",
+                path=map_path, fix="bake the map again to write a consistent pair")
 
     @property
     def full_scale(self) -> float:
@@ -267,7 +300,11 @@ def read_sidecar(map_path: str | os.PathLike) -> Sidecar:
         The sidecar is missing, not JSON, or a field the map's decoding needs is missing or has the
         wrong type (e.g. ``code_max`` "abc"): naming the field and the fix.
     """
+    from thickbake.inputs import check_regular_file
+
     side = sidecar_path(map_path)
+    if side.exists() or side.is_symlink():
+        check_regular_file(side, what="sidecar", max_bytes=SIDECAR_MAX_BYTES)  # never a FIFO or a folder
     try:
         data = json.loads(side.read_text("utf-8"))
     except FileNotFoundError:
@@ -310,7 +347,8 @@ def parse_sidecar(data: Any, path: str | os.PathLike) -> Sidecar:
     return Sidecar(path=path, measure=measure_named(measure), reach=reach,
                    encoding=Encoding(None if code_max is None else int(code_max), offset, scale),
                    coverage=coverage, version=_text(data.get("thickbake_version")), map_name=_text(data.get("map")),
-                   input_sha256=_text(source.get("sha256")), batch=record, data=data)
+                   input_sha256=_text(source.get("sha256")), batch=record, data=data,
+                   map_sha256=_text(data.get("map_sha256")))
 
 
 def described_map(sidecar_file: str | os.PathLike) -> str | None:
@@ -342,5 +380,5 @@ def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeErro
 
 
 __all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint", "with_error_map",
-           "with_batch_record", "Encoding", "BatchRecord", "Sidecar", "read_sidecar", "parse_sidecar",
+           "with_batch_record", "with_map_checksum", "Encoding", "BatchRecord", "Sidecar", "read_sidecar", "parse_sidecar",
            "described_map"]

@@ -323,7 +323,7 @@ def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None
     """
     start = time.perf_counter()
     settings, run = _with_options(settings, run, options)
-    asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
+    asset = mesh if isinstance(mesh, Asset) else load_asset(mesh, argument="mesh")
     fit = settings.reach == "fit"
     mm_per_unit = medium_scale(settings, asset.path)  # a missing unit is refused before any tracing
     transfer = None
