@@ -192,6 +192,8 @@ class BatchOutcome:
     threads: int | None = None
     seconds: float = 0.0
     interrupted: bool = False
+    #: One line when report.json/report.html could not be written (then the exit code is 1).
+    report_error: str | None = None
 
 
 # ---------------------------------------------------------------------------- planning
@@ -651,14 +653,22 @@ def run_batch(src, out, config=None, *, jobs: int | None = None, force: bool = F
                 shown = batch_previews(plan, stills=True, notify=notify, progress=progress)
             report = build_report(plan, started_at, time.perf_counter() - started, cores, jobs_used, threads,
                                   cluster, force, interrupted, shown)
-            write_reports(plan.out, report, batch_thumbnails(plan), {k: v["still"] for k, v in shown.items()})
+            report_error = None
+            try:
+                write_reports(plan.out, report, batch_thumbnails(plan), {k: v["still"] for k, v in shown.items()})
+            except OSError as exc:
+                # the maps and sidecars are written and consistent; only the summary is missing
+                report_error = (f"{plan.out}: cannot write the report ({exc.strerror or exc}); the maps are written, "
+                                "free some space or fix the folder's permissions and run the batch again to get it")
+            except ThickbakeError as exc:
+                report_error = exc.one_line()
     finally:
         if runner is not None:
             runner.close()
-    failed = any(j.status == "failed" for j in plan.jobs)
+    failed = any(j.status == "failed" for j in plan.jobs) or report_error is not None
     code = EXIT_INTERRUPTED if interrupted else (EXIT_FAILED if failed else EXIT_OK)
     return BatchOutcome(plan=plan, report=report, exit_code=code, jobs_used=jobs_used, threads=threads,
-                        seconds=time.perf_counter() - started, interrupted=interrupted)
+                        seconds=time.perf_counter() - started, interrupted=interrupted, report_error=report_error)
 
 
 def _run_jobs(plan: BatchPlan, todo: list[AssetJob], runner, threads: int | None,
@@ -959,9 +969,8 @@ def summary_line(outcome: BatchOutcome) -> str:
             how += f" x {outcome.threads} thread{'s' if outcome.threads != 1 else ''}"
         else:
             how += " on the cluster"
-    report = outcome.plan.out / "report.html"
-    return (f"batch: {', '.join(parts)} of {totals['assets']} assets{extra} in {outcome.seconds:.1f} s{how}; "
-            f"report {report}")
+    report = f"report {outcome.plan.out / 'report.html'}" if outcome.report_error is None else "no report (see the error)"
+    return f"batch: {', '.join(parts)} of {totals['assets']} assets{extra} in {outcome.seconds:.1f} s{how}; {report}"
 
 
 __all__ = ["run_batch", "plan_batch", "bake_asset", "find_meshes", "map_name", "input_digests", "clean_temp_files",

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 
-from thickbake.cli.output import EXIT_FAILED, EXIT_OK, echo, one_line, print_warnings, strict_failure, verbose_lines
+from thickbake.cli.output import EXIT_FAILED, EXIT_OK, echo, error, one_line, print_warnings, strict_failure, verbose_lines
 from thickbake.errors import ThickbakeError
 
 EXAMPLES = """examples:
@@ -66,6 +66,8 @@ def run(args) -> int:
         verbose_lines(format_plan(outcome.plan)[:-1])
     if not args.quiet:
         echo(summary_line(outcome))
+    if outcome.report_error:
+        error(outcome.report_error)
     warnings = outcome.report["totals"].get("warnings", 0) if outcome.report else 0
     if args.strict and warnings and outcome.exit_code == EXIT_OK:
         strict_failure(warnings)

@@ -37,7 +37,8 @@ class _Parser(argparse.ArgumentParser):
         super().__init__(*args, **kwargs)
 
     def error(self, message):  # noqa: D401 - argparse API
-        text = " ".join(f"{self.prog}: error: {message} (see '{self.prog} --help')".split())
+        # "thickbake: error:" like every other error line, so scripts need one pattern
+        text = " ".join(f"thickbake: error: {message} (see '{self.prog} --help')".split())
         self.exit(EXIT_USAGE, text + "\n")
 
 
