@@ -29,23 +29,29 @@ ROOT = Path(__file__).resolve().parents[1]
 TIMEOUT_SECONDS = 60
 FAST = ["--size", "16", "--rays", "4"]
 
-# A tetrahedron with UVs (counter-clockwise from outside, so its volume is positive).
+# A tetrahedron (counter-clockwise from outside, so its volume is positive) whose four faces each
+# get their own UV triangle in one quadrant of the unit square.  The OBJ has 4 'v' lines, 12 'vt'
+# lines and 4 'f' lines (lines 17-20), so text appended by a case starts on line 21.
 TETRA_V = [(0, 0, 0), (1, 0, 0), (0, 1, 0), (0, 0, 1)]
-TETRA_VT = [(0.1, 0.1), (0.9, 0.1), (0.1, 0.9), (0.9, 0.9)]
 TETRA_F = [(1, 3, 2), (1, 2, 4), (1, 4, 3), (2, 3, 4)]
+TETRA_VT = [(qx + a, qy + b) for qx, qy in ((0, 0), (0.5, 0), (0, 0.5), (0.5, 0.5))
+            for a, b in ((0.05, 0.05), (0.45, 0.05), (0.05, 0.45))]
 
 
-def obj_text(vertices=TETRA_V, uvs=TETRA_VT, faces=TETRA_F, extra: str = "") -> str:
+def obj_text(vertices=TETRA_V, faces=TETRA_F, extra: str = "") -> str:
     lines = [f"v {' '.join(repr(float(c)) for c in v)}" for v in vertices]
-    lines += [f"vt {u} {v}" for u, v in uvs]
-    lines += [f"f {' '.join(f'{i}/{i}' for i in f)}" for f in faces]
+    lines += [f"vt {u} {v}" for u, v in TETRA_VT]
+    lines += [f"f {' '.join(f'{i}/{3 * k + j + 1}' for j, i in enumerate(f))}" for k, f in enumerate(faces)]
     return "\n".join(lines) + "\n" + extra
 
 
 def tetra_mesh():
+    """The same tetrahedron as a trimesh object, UVs per corner (vertices split per face)."""
     import trimesh
 
-    mesh = trimesh.Trimesh(np.array(TETRA_V, float), np.array(TETRA_F) - 1, process=False)
+    corners = np.array(TETRA_F) - 1
+    vertices = np.array(TETRA_V, float)[corners.reshape(-1)]
+    mesh = trimesh.Trimesh(vertices, np.arange(12).reshape(4, 3), process=False)
     mesh.visual = trimesh.visual.TextureVisuals(uv=np.array(TETRA_VT, float))
     return mesh
 
@@ -118,7 +124,7 @@ MESH_CASES = {
     "obj_collinear": lambda d: write(d / "x.obj", obj_text(vertices=[(0, 0, 0), (1, 0, 0), (2, 0, 0), (3, 0, 0)])),
     "obj_single_point": lambda d: write(d / "x.obj", obj_text(vertices=[(1, 1, 1)] * 4)),
     "obj_no_uv": lambda d: write(d / "x.obj", "v 0 0 0\nv 1 0 0\nv 0 1 0\nv 0 0 1\nf 1 3 2\nf 1 2 4\nf 1 4 3\nf 2 3 4\n"),
-    "obj_uv_past_end": lambda d: write(d / "x.obj", obj_text(extra="f 1/9 2/9 3/9\n")),
+    "obj_uv_past_end": lambda d: write(d / "x.obj", obj_text(extra="f 1/99 2/99 3/99\n")),
     # GLB container defects
     "glb_wrong_magic": lambda d: write(d / "x.glb", b"gLTF" + glb_bytes()[4:]),
     "glb_version_1": lambda d: write(d / "x.glb", glb_bytes()[:4] + struct.pack("<I", 1) + glb_bytes()[8:]),
@@ -371,9 +377,9 @@ def test_refused_in_one_line(outcomes, kind, name):
 
 # what the one line says, for the classes whose wording matters most
 EXPECTED_WORDS = {
-    "obj_face_index_0": ["line 9", "vertex 0"],
-    "obj_face_index_past_end": ["line 13", "vertex 99999", "only 4"],
-    "obj_two_index_face": ["line 13", "at least 3 corners"],
+    "obj_face_index_0": ["line 17", "vertex 0"],
+    "obj_face_index_past_end": ["line 21", "vertex 99999", "only 4"],
+    "obj_two_index_face": ["line 21", "at least 3 corners"],
     "obj_short_vertex": ["line 1", "3 numbers"],
     "garbage_obj_with_nul": ["binary data"],
     "zeros_ply_over_cap": ["over the", "limit"],

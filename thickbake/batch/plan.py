@@ -621,6 +621,9 @@ def run_batch(src, out, config=None, *, jobs: int | None = None, force: bool = F
         notify(f"warning: {plan.rules.path}: {rule.label()} matches no asset")
     for text in plan.warnings:
         notify(f"warning: {text}")
+    for job in plan.jobs:  # refused while planning (unreadable, FIFO, URI outside its folder, name clash)
+        if job.status == "failed" and not job.reason:
+            notify(f"failed: {job.rel}: {job.error}")
     todo = plan.to_bake()
     cores = available_cores()
     runner = None
