@@ -295,3 +295,17 @@ def test_seed_range(seed, ok):
 def test_largest_seed_bakes():
     result = thickbake.bake(shapes.sphere(segments=12).mesh, size=16, rays=4, seed=2**64 - 1)
     assert result.covered.any()
+
+
+def test_obj_prescan_gives_the_same_answer_in_any_chunk_size(monkeypatch):
+    """The OBJ pre-scan reads bounded chunks; the line it names must not depend on where they are cut."""
+    from thickbake.pipeline import validate
+
+    lines = [f"v {i} {i % 7} {i % 3}" for i in range(200)] + [f"  f {i + 1} {i + 2} -{1 + i % 5}" for i in range(190)]
+    good = ("\n".join(lines) + "\n").encode()
+    bad = good + b"f 1 2 201\n"
+    for chunk in (37, 64, 1000, 1 << 20):
+        monkeypatch.setattr(validate, "_OBJ_CHUNK_BYTES", chunk)
+        validate.check_obj(good, "good.obj")
+        with pytest.raises(thickbake.ThickbakeError, match="line 391: a face refers to vertex 201 but the file defines only 200"):
+            validate.check_obj(bad, "bad.obj")

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+import warnings
 
 from thickbake.cli import bake as bake_cmd
 from thickbake.cli import batch as batch_cmd
@@ -84,7 +85,12 @@ def _main(argv) -> int:
         parser.print_help(sys.stderr)
         return EXIT_USAGE
     try:
-        return args.func(args)
+        with warnings.catch_warnings():
+            if not args.debug:
+                # Values whose arithmetic would overflow are refused before a bake (README, "What input
+                # is refused"); should a numpy RuntimeWarning still occur, it is no message for a user.
+                warnings.simplefilter("ignore", RuntimeWarning)
+            return args.func(args)
     except ThickbakeError as exc:
         if args.debug:
             raise

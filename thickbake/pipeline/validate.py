@@ -35,7 +35,9 @@ MAX_FACES = 10_000_000
 #: Most vertices accepted in one asset (seam splits make a mesh hold up to 3 per triangle).
 MAX_VERTICES = 3 * MAX_FACES
 #: The OBJ pre-scan reads this many bytes at a time, so its temporaries stay bounded (~10 x this).
-_OBJ_CHUNK_BYTES = 8 * 1024**2
+_OBJ_CHUNK_BYTES = 4 * 1024**2
+#: Longest vertex index the pre-scan reads (18 digits fit in int64; longer ones are refused).
+_MAX_DIGITS = 18
 
 _REEXPORT = "re-export it from your modelling tool"
 
@@ -118,23 +120,33 @@ def check_obj(data: bytes, where) -> bytes:
 
 def _scan_obj_chunk(chunk: np.ndarray, vertices_before: int, line_base: int, where):
     """One chunk of whole lines: (vertices, triangles, largest index, its line, line count)."""
-    nl = np.flatnonzero(chunk == 10)
+    newline = chunk == 10
+    nl = np.flatnonzero(newline)
     ends = nl if (len(chunk) and chunk[-1] == 10) else np.append(nl, len(chunk))
-    starts = np.concatenate(([0], ends[:-1] + 1))
     n_lines = len(ends)
-    line_of_byte = np.repeat(np.arange(n_lines, dtype=np.int32), ends - starts + 1)[: len(chunk)]
-    # a '#' starts a comment: only what comes before the first one on a line counts
-    first_hash = ends.copy()
-    hashes = np.flatnonzero(chunk == ord("#"))
-    if len(hashes):
-        np.minimum.at(first_hash, line_of_byte[hashes], hashes)
+    newlines_before = np.cumsum(newline, dtype=np.int32)  # line of byte i (not itself a newline)
     space = (chunk == 32) | ((chunk >= 9) & (chunk <= 13))
     token_start = ~space
     token_start[1:] &= space[:-1]
-    token_start &= np.arange(len(chunk)) < first_hash[line_of_byte]
-    tokens = np.bincount(line_of_byte[token_start], minlength=n_lines)
-    padded = np.concatenate((chunk, np.zeros(2, np.uint8)))
-    c0, c1, c2 = padded[starts], padded[starts + 1], padded[starts + 2]
+    starts_of_tokens = np.flatnonzero(token_start)
+    lines_of_tokens = newlines_before[starts_of_tokens]
+    # a '#' starts a comment: only the tokens before the first one on a line count
+    hashes = np.flatnonzero(chunk == ord("#"))
+    if len(hashes):
+        first_hash = ends.copy()
+        lines_of_hashes = newlines_before[hashes]
+        first = np.concatenate(([True], lines_of_hashes[1:] != lines_of_hashes[:-1]))
+        first_hash[lines_of_hashes[first]] = hashes[first]
+        keep = starts_of_tokens < first_hash[lines_of_tokens]
+        starts_of_tokens, lines_of_tokens = starts_of_tokens[keep], lines_of_tokens[keep]
+    tokens = np.bincount(lines_of_tokens, minlength=n_lines)
+    # each line's keyword is its first token (lines may be indented)
+    keyword = np.full(n_lines, len(chunk))
+    first_token = np.ones(len(lines_of_tokens), bool)
+    first_token[1:] = lines_of_tokens[1:] != lines_of_tokens[:-1]
+    keyword[lines_of_tokens[first_token]] = starts_of_tokens[first_token]
+    padded = np.concatenate((chunk, np.zeros(_MAX_DIGITS + 2, np.uint8)))
+    c0, c1, c2 = padded[keyword], padded[keyword + 1], padded[keyword + 2]
     blank1 = (c1 == 32) | (c1 == 9)
     blank2 = (c2 == 32) | (c2 == 9)
     is_v = (c0 == ord("v")) & blank1
@@ -151,17 +163,16 @@ def _scan_obj_chunk(chunk: np.ndarray, vertices_before: int, line_base: int, whe
                                  path=where, fix=_REEXPORT)
     n_vertices = int(is_v.sum())
     triangles = int((tokens[is_f] - 3).sum())
-    corner = token_start & is_f[line_of_byte]
-    corner[starts[is_f]] = False  # the 'f' keyword itself
-    pos = np.flatnonzero(corner)
+    corner = is_f[lines_of_tokens] & ~first_token  # tokens of face lines after the 'f'
+    pos = starts_of_tokens[corner]
     if len(pos) == 0:
         return n_vertices, triangles, 0, 0, n_lines
+    lines_of_corner = lines_of_tokens[corner]
     values, ok = _parse_ints(padded, pos)
-    lines_of_corner = line_of_byte[pos]
     if not ok.all():
         line = line_base + lines_of_corner[np.argmin(ok)] + 1
-        raise ThickbakeError(f"line {line}: a face corner is not a vertex number (a whole number of at most 18 digits)", path=where,
-                             fix=_REEXPORT)
+        raise ThickbakeError(f"line {line}: a face corner is not a vertex number (a whole number of at most "
+                             f"{_MAX_DIGITS} digits)", path=where, fix=_REEXPORT)
     zero = np.flatnonzero(values == 0)
     if len(zero):
         raise ThickbakeError(f"line {line_base + lines_of_corner[zero[0]] + 1}: a face refers to vertex 0, but OBJ "
@@ -182,26 +193,29 @@ def _scan_obj_chunk(chunk: np.ndarray, vertices_before: int, line_base: int, whe
 
 
 def _parse_ints(padded: np.ndarray, pos: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Signed decimal integers starting at byte positions ``pos``; (values int64, parsed ok)."""
-    sign = np.where(padded[pos] == ord("-"), -1, 1)
-    at = pos + (padded[pos] == ord("-"))
+    """Signed decimal integers starting at byte positions ``pos``; (values int64, parsed ok).
+
+    ``padded`` ends with at least ``_MAX_DIGITS + 2`` zero bytes.  A corner is ``v``, ``v/t``,
+    ``v//n`` or ``v/t/n``: after 1 to :data:`_MAX_DIGITS` digits comes '/', a blank or the end.
+    Digit by digit over the numbers still being read, so the work is the total number of digits.
+    """
+    negative = padded[pos] == ord("-")
+    at = pos + negative
     values = np.zeros(len(pos), np.int64)
-    alive = np.ones(len(pos), bool)
-    digits = np.zeros(len(pos), np.int64)
-    limit = len(padded) - 1
-    for _ in range(18):  # 18 digits fit in int64; longer numbers are refused
-        c = padded[np.minimum(at, limit)].astype(np.int64)
-        is_digit = alive & (c >= 48) & (c <= 57) & (at < limit)
-        values = np.where(is_digit, values * 10 + (c - 48), values)
-        digits += is_digit
-        alive = is_digit
-        at = at + is_digit
-        if not alive.any():
+    ok = np.zeros(len(pos), bool)
+    alive = np.arange(len(pos))
+    for length in range(_MAX_DIGITS + 1):
+        c = padded[at[alive] + length]
+        digit = (c >= 48) & (c <= 57)
+        ended = alive[~digit]
+        ok[ended] = (length > 0) & np.isin(c[~digit], (47, 32, 9, 13, 10, 11, 12, 35, 0))
+        alive = alive[digit]
+        if not len(alive):
             break
-    c = padded[np.minimum(at, limit)]
-    # a corner is 'v', 'v/t', 'v//n' or 'v/t/n': after the digits comes '/', a blank or the line end
-    terminated = ~alive & np.isin(c, (47, 32, 9, 13, 10, 11, 12, 35, 0))
-    return sign * values, (digits > 0) & terminated
+        if length < _MAX_DIGITS:
+            values[alive] = values[alive] * 10 + (c[digit].astype(np.int64) - 48)
+    # numbers still being read after _MAX_DIGITS digits stay not ok
+    return np.where(negative, -values, values), ok
 
 
 # ---------------------------------------------------------------------------- PLY
