@@ -120,7 +120,7 @@ MESH_CASES = {
     "obj_inf_vertex": lambda d: write(d / "x.obj", obj_text(vertices=[(0, 0, 0), (float("inf"), 0, 0), (0, 1, 0), (0, 0, 1)])),
     "obj_scaled_1e30": lambda d: write(d / "x.obj", obj_text(vertices=[tuple(c * 1e30 for c in v) for v in TETRA_V])),
     "obj_scaled_1e-30": lambda d: write(d / "x.obj", obj_text(vertices=[tuple(c * 1e-30 for c in v) for v in TETRA_V])),
-    "obj_far_from_origin": lambda d: write(d / "x.obj", obj_text(vertices=[(x + 1e9, y, z) for x, y, z in TETRA_V])),
+    "obj_far_from_origin": lambda d: write(d / "x.obj", obj_text(vertices=[(x + 1e15, y, z) for x, y, z in TETRA_V])),
     "obj_collinear": lambda d: write(d / "x.obj", obj_text(vertices=[(0, 0, 0), (1, 0, 0), (2, 0, 0), (3, 0, 0)])),
     "obj_single_point": lambda d: write(d / "x.obj", obj_text(vertices=[(1, 1, 1)] * 4)),
     "obj_no_uv": lambda d: write(d / "x.obj", "v 0 0 0\nv 1 0 0\nv 0 1 0\nv 0 0 1\nf 1 3 2\nf 1 2 4\nf 1 4 3\nf 2 3 4\n"),

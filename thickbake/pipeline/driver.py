@@ -283,7 +283,7 @@ def bake(mesh, settings: BakeSettings | None = None, run: RunOptions | None = No
     >>> bool(abs(result.values[result.covered].mean() - 2.0) < 0.01)
     True
     """
-    asset = mesh if isinstance(mesh, Asset) else load_asset(mesh)
+    asset = mesh if isinstance(mesh, Asset) else load_asset(mesh, argument="mesh")
     settings, run = _with_options(settings, run, options)
     groups, _ = map_groups(asset, settings.uv_set)
     if len(groups) > 1:
