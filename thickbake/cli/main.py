@@ -69,13 +69,53 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+class _SigintSeen:
+    """SIGINT handler that remembers it ran, then raises KeyboardInterrupt as Python's own does.
+
+    A Ctrl-C that lands inside a C extension's import (numpy's, for one) can come out as an
+    ImportError instead of KeyboardInterrupt; the flag still tells an interruption from a bug.
+    """
+
+    def __init__(self):
+        self.seen = False
+
+    def __call__(self, signum, frame):
+        self.seen = True
+        raise KeyboardInterrupt
+
+
+_SIGINT = _SigintSeen()
+
+
 def main(argv=None) -> int:
     """Entry point of ``thickbake`` and ``python -m thickbake``; returns the exit code (see cli.output)."""
+    import signal
+    import threading
+
+    previous = None
+    if threading.current_thread() is threading.main_thread() and signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+        _SIGINT.seen = False
+        previous = signal.signal(signal.SIGINT, _SIGINT)
     try:
         return _main(argv)
     except KeyboardInterrupt:  # Ctrl-C while parsing, or while an error was being reported
-        print("thickbake: interrupted", file=sys.stderr)
-        return EXIT_INTERRUPTED
+        return _interrupted()
+    except Exception:  # noqa: BLE001 - building the parser failed: one line, not a traceback
+        if _SIGINT.seen:
+            return _interrupted()
+        if "--debug" in (sys.argv[1:] if argv is None else argv):
+            raise
+        error(f"internal error ({type(sys.exc_info()[1]).__name__}: {sys.exc_info()[1]}); this is a bug in "
+              "thickbake - rerun with --debug and report the traceback")
+        return EXIT_INTERNAL
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGINT, previous)
+
+
+def _interrupted() -> int:
+    print("thickbake: interrupted", file=sys.stderr)
+    return EXIT_INTERRUPTED
 
 
 def _main(argv) -> int:
@@ -90,15 +130,17 @@ def _main(argv) -> int:
                 # Values whose arithmetic would overflow are refused before a bake (README, "What input
                 # is refused"); should a numpy RuntimeWarning still occur, it is no message for a user.
                 warnings.simplefilter("ignore", RuntimeWarning)
-            return args.func(args)
+            code = args.func(args)
+        if _SIGINT.seen:  # a Ctrl-C that a library swallowed (e.g. inside an optional import)
+            return _interrupted()
+        return code
     except ThickbakeError as exc:
         if args.debug:
             raise
         error(exc.one_line())
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print("thickbake: interrupted", file=sys.stderr)
-        return EXIT_INTERRUPTED
+        return _interrupted()
     except BrokenPipeError:
         if _stdout_broken():
             # output piped into e.g. `head`, which stopped reading: a quiet exit, as other tools do
@@ -140,6 +182,8 @@ def _stdout_broken() -> bool:
 
 def _internal(args) -> int:
     exc = sys.exc_info()[1]
+    if _SIGINT.seen:  # a Ctrl-C that surfaced as another exception type
+        return _interrupted()
     if args.debug:
         raise exc
     error(f"internal error ({type(exc).__name__}: {exc}); this is a bug in thickbake - rerun with --debug "
