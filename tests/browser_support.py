@@ -20,13 +20,14 @@ import json
 import os
 import queue
 import shutil
-import signal
 import subprocess
 import tempfile
 import threading
 from pathlib import Path
 
 import pytest
+
+from thickbake.preview.still import end_process_group
 
 BROWSER_DIR = Path(__file__).parent / "browser"
 NODE_MODULES = BROWSER_DIR / "node_modules"
@@ -124,20 +125,6 @@ def serve(routes: dict[str, Path]):
         server.server_close()
 
 
-def _end(proc: subprocess.Popen) -> None:
-    """End the Chromium we started and its helper processes (its own process group, by id)."""
-    for sig in (signal.SIGTERM, signal.SIGKILL):
-        try:
-            os.killpg(proc.pid, sig)
-        except ProcessLookupError:
-            return
-        try:
-            proc.wait(timeout=10)
-            return
-        except subprocess.TimeoutExpired:
-            continue
-
-
 def run_page(url: str, results: queue.Queue, timeout: float = 60.0, window: str = "256,256") -> dict:
     """Open ``url`` in headless Chromium and wait for the page to post its JSON result.
 
@@ -156,7 +143,7 @@ def run_page(url: str, results: queue.Queue, timeout: float = 60.0, window: str 
             except queue.Empty:
                 body = None
         finally:
-            _end(proc)
+            end_process_group(proc)
         log.seek(0)
         text = log.read().decode("utf-8", "replace")
         log.close()

@@ -94,6 +94,9 @@ def allowed_roots(src: Path, out: Path) -> list[str]:
     roots = {str(src), str(out), str(Path(thickbake.__file__).resolve().parent), sys.prefix, sys.base_prefix,
              sys.exec_prefix, *site.getsitepackages(), site.getusersitepackages(), "/dev/", "/proc/", "/sys/"}
     roots |= {p for p in sysconfig.get_paths().values()}
+    # the package's own distribution metadata: an editable or in-tree install keeps it beside the
+    # package (thickbake.egg-info), where importlib.metadata reads entry points from it
+    roots |= {str(p) for p in Path(thickbake.__file__).resolve().parents[1].glob("*.egg-info")}
     return [os.path.realpath(r) for r in roots if r]
 
 

@@ -70,8 +70,13 @@ def check_regular_file(path: str | os.PathLike, what: str = "mesh file", max_byt
     return info
 
 
-def read_regular_file(path: str | os.PathLike, what: str = "mesh file", max_bytes: int = MAX_FILE_BYTES) -> bytes:
-    """All bytes of a regular file of at most ``max_bytes``; never blocks on a FIFO or device."""
+def iter_regular_file(path: str | os.PathLike, what: str = "mesh file", max_bytes: int = MAX_FILE_BYTES,
+                      block_bytes: int = 1 << 20):
+    """Yield the bytes of a regular file of at most ``max_bytes`` in blocks; never blocks on a FIFO or device.
+
+    The file is judged by ``os.stat`` before it is opened, opened non-blocking, and judged again on the
+    open descriptor (it may have been replaced in between).  Every failure is a :class:`ThickbakeError`.
+    """
     check_regular_file(path, what, max_bytes)
     try:
         fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
@@ -82,22 +87,27 @@ def read_regular_file(path: str | os.PathLike, what: str = "mesh file", max_byte
         info = os.fstat(fd)
         if not stat.S_ISREG(info.st_mode):  # replaced between the stat and the open
             raise ThickbakeError("is not a regular file", path=path, fix=f"give the {what} itself")
-        chunks, total = [], 0
+        total = 0
         while True:
-            block = os.read(fd, 1 << 20)
+            try:
+                block = os.read(fd, block_bytes)
+            except OSError as exc:
+                raise ThickbakeError(f"cannot read the {what} ({exc.strerror or type(exc).__name__})", path=path,
+                                     fix="check the disk and the file's permissions") from None
             if not block:
-                break
+                return
             total += len(block)
             if total > max_bytes:
                 raise ThickbakeError(f"the {what} grew over the {_mb(max_bytes)} limit while it was read", path=path,
                                      fix="bake it once it is completely written")
-            chunks.append(block)
-    except OSError as exc:
-        raise ThickbakeError(f"cannot read the {what} ({exc.strerror or type(exc).__name__})", path=path,
-                             fix="check the disk and the file's permissions") from None
+            yield block
     finally:
         os.close(fd)
-    return b"".join(chunks)
+
+
+def read_regular_file(path: str | os.PathLike, what: str = "mesh file", max_bytes: int = MAX_FILE_BYTES) -> bytes:
+    """All bytes of a regular file of at most ``max_bytes``; never blocks on a FIFO or device."""
+    return b"".join(iter_regular_file(path, what, max_bytes))
 
 
 def confined_path(folder: str | os.PathLike, uri: str, where: str | os.PathLike) -> Path:

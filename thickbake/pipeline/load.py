@@ -38,7 +38,7 @@ import numpy as np
 
 from thickbake.constants import DEGENERATE_NORMAL_LENGTH, MERGE_TOLERANCE_FRACTION
 from thickbake.errors import ThickbakeError
-from thickbake.inputs import check_regular_file, read_regular_file
+from thickbake.inputs import check_regular_file, iter_regular_file, read_regular_file
 from thickbake.pipeline.validate import check_glb, check_gltf, check_gltf_document, check_obj, check_ply, confined_resolver
 from thickbake.pipeline.readers import Material, Part, ReadResult, apply_transform, read_gltf, read_obj, transform_scale
 from thickbake.geometry import double_areas, expand_ranges, triangle_cross, unit_normals, uv_areas
@@ -168,25 +168,9 @@ def file_sha256(path: str | os.PathLike) -> str:
         The path is not a regular file, is over :data:`thickbake.inputs.MAX_FILE_BYTES`, or cannot
         be read.
     """
-    import stat
-
-    check_regular_file(path)
     digest = hashlib.sha256()
-    try:
-        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
-    except OSError as exc:
-        raise ThickbakeError(f"cannot open the file ({exc.strerror or type(exc).__name__})", path=path,
-                             fix="check its permissions") from None
-    try:
-        if not stat.S_ISREG(os.fstat(fd).st_mode):
-            raise ThickbakeError("is not a regular file", path=path, fix="give the mesh file itself")
-        while block := os.read(fd, 1 << 20):
-            digest.update(block)
-    except OSError as exc:
-        raise ThickbakeError(f"cannot read the file ({exc.strerror or type(exc).__name__})", path=path,
-                             fix="check the disk and the file's permissions") from None
-    finally:
-        os.close(fd)
+    for block in iter_regular_file(path, "file"):
+        digest.update(block)
     return digest.hexdigest()
 
 

@@ -99,7 +99,7 @@ class _Handler(http.server.BaseHTTPRequestHandler):
         pass
 
 
-def _end(proc: subprocess.Popen) -> None:
+def end_process_group(proc: subprocess.Popen) -> None:
     """End the Chromium we started and its helpers (its own process group, by id)."""
     for sig in (signal.SIGTERM, signal.SIGKILL):
         try:
@@ -153,7 +153,7 @@ def render_still(page_html: str, width: int = 800, height: int = 600, params: st
             except queue.Empty:
                 body = None
             finally:
-                _end(proc)
+                end_process_group(proc)
             if body is None:
                 log.seek(0)
                 tail = " ".join(log.read().decode("utf-8", "replace").split())[-300:]
