@@ -104,7 +104,7 @@ BATCH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply")
 #: A source ``<stem>.<ext>`` is baked into ``<stem>`` + this tag + the map suffix.
 MAP_TAG = ".thickness"  # the tag of the default measure; other measures use their own name
 LOCK_NAME = ".thickbake-batch.lock"
-#: Temporary files of :func:`thickbake.output.atomic_write_bytes` (``.<name>.<random>.tmp``) for the
+#: Temporary files of :func:`thickbake.maps.files.atomic_write_bytes` (``.<name>.<random>.tmp``) for the
 #: files a batch writes; only these are removed at start-up.
 _TEMP_NAME = re.compile(r"^\..+\.(png|tif|tiff|exr|glb|gltf|json|html)\.[A-Za-z0-9_]+\.tmp$")
 #: Work of loading and encoding an asset, in ray equivalents, added to each asset's share of the

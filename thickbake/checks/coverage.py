@@ -83,7 +83,7 @@ def texel_samples(asset, width: int, height: int, supersample: int = 1, bias: fl
 
     Parameters
     ----------
-    asset : thickbake.mesh.Asset
+    asset : thickbake.pipeline.load.Asset
     width, height : int
         Map size, texels.
     supersample : int
@@ -183,7 +183,7 @@ def exact_texel_coverage(asset, width: int, height: int) -> TexelCoverage:
 
     Parameters
     ----------
-    asset : thickbake.mesh.Asset
+    asset : thickbake.pipeline.load.Asset
     width, height : int
 
     Returns

@@ -1,6 +1,6 @@
 """Geometry checks of a user's asset before baking: orientation of every face, and inward rays that meet front faces.
 
-Both work on the position-merged trace mesh of :class:`thickbake.mesh.Asset` (seams welded), so
+Both work on the position-merged trace mesh of :class:`thickbake.pipeline.load.Asset` (seams welded), so
 they see the solid the ray engine sees.
 
 Orientation
@@ -213,7 +213,7 @@ def front_face_hits(asset, engine, rays: int = 1 << 16, seed: int = 0, bias: flo
 
     Parameters
     ----------
-    asset : thickbake.mesh.Asset
+    asset : thickbake.pipeline.load.Asset
     engine : ray engine over ``asset.trace_vertices``/``trace_faces`` with ``first_hit_faces``
     rays : int
     seed : int

@@ -21,7 +21,7 @@ The meshes are built with :mod:`thickbake.surfaces`.  Its building blocks (also 
 working: :class:`ProfilePiece`, :func:`line_piece`, :func:`arc_piece`, :func:`revolve`,
 :func:`sphere_surface`, :func:`polycube_surface`, :class:`Surface`, :func:`join_surfaces`,
 :func:`pack_islands`, :func:`assemble_mesh`, :func:`uv_islands`, :func:`obj_bytes`, :func:`glb_bytes`,
-:data:`ISLAND_GAP`; and :func:`atomic_write_bytes` from :mod:`thickbake.output`.
+:data:`ISLAND_GAP`; and :func:`atomic_write_bytes` from :mod:`thickbake.maps.files`.
 
 References
 ----------
