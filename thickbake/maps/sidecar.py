@@ -300,19 +300,31 @@ def read_sidecar(map_path: str | os.PathLike) -> Sidecar:
         The sidecar is missing, not JSON, or a field the map's decoding needs is missing or has the
         wrong type (e.g. ``code_max`` "abc"): naming the field and the fix.
     """
+    side = sidecar_path(map_path)
+    return parse_sidecar(load_sidecar_json(side), side)
+
+
+def load_sidecar_json(side: str | os.PathLike):
+    """The decoded JSON of the sidecar file ``side`` (any JSON value; :func:`parse_sidecar` checks its fields).
+
+    Raises
+    ------
+    ThickbakeError
+        The file is missing, not a regular file (a FIFO or folder is never opened), over
+        :data:`SIDECAR_MAX_BYTES`, or not JSON.
+    """
     from thickbake.inputs import check_regular_file
 
-    side = sidecar_path(map_path)
+    side = Path(side)
     if side.exists() or side.is_symlink():
         check_regular_file(side, what="sidecar", max_bytes=SIDECAR_MAX_BYTES)  # never a FIFO or a folder
     try:
-        data = json.loads(side.read_text("utf-8"))
+        return json.loads(side.read_text("utf-8"))
     except FileNotFoundError:
         raise ThickbakeError("the map has no sidecar", path=side,
                              fix="keep the .json written next to each map by 'thickbake bake'") from None
     except (OSError, ValueError) as exc:
         raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=side, fix="bake the map again") from None
-    return parse_sidecar(data, side)
 
 
 def parse_sidecar(data: Any, path: str | os.PathLike) -> Sidecar:

@@ -17,7 +17,6 @@ Nothing here bakes: maps and sidecars are read, checked against the asset and ha
 
 from __future__ import annotations
 
-import json
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -97,7 +96,7 @@ def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, dict]:
     A map's sidecar is validated by :func:`thickbake.maps.sidecar.parse_sidecar`; a packed image's
     sidecar (a ``channels`` block, one decode per channel) is checked channel by channel later.
     """
-    from thickbake.maps.sidecar import parse_sidecar, sidecar_path
+    from thickbake.maps.sidecar import load_sidecar_json, parse_sidecar, sidecar_path
 
     path = Path(arg)
     if not path.exists():
@@ -109,13 +108,7 @@ def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, dict]:
     else:
         raise ThickbakeError(f"{path.suffix or '(no suffix)'} is not a map", path=path,
                              fix="give maps (.png, .tif, .exr) or their .json sidecars after the asset")
-    try:
-        side = json.loads(side_file.read_text("utf-8"))
-    except FileNotFoundError:
-        raise ThickbakeError("the map has no sidecar", path=side_file,
-                             fix="keep the .json written next to each map by 'thickbake bake'") from None
-    except (OSError, ValueError) as exc:
-        raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=side_file, fix="bake the map again") from None
+    side = load_sidecar_json(side_file)
     if not isinstance(side, dict):
         raise ThickbakeError("the sidecar is not a JSON object", path=side_file, fix="give a sidecar written by thickbake")
     if not isinstance(side.get("channels"), dict):
