@@ -608,6 +608,20 @@ def test_atomic_write_keeps_old_file_on_failure(tmp_path, monkeypatch):
 # ---------------------------------------------------------------------------------------------
 
 
+def test_sample_generator_reproduces_the_committed_bytes(tmp_path):
+    """scripts/make_samples.py promises identical bytes on every run: the committed samples must be
+    what it writes (a drift, e.g. a "-0.0000000" that flips sign between numpy builds, fails here)."""
+    import subprocess
+    import sys
+
+    script = SAMPLES.parent / "scripts" / "make_samples.py"
+    subprocess.run([sys.executable, str(script), "--out", str(tmp_path)], check=True, capture_output=True)
+    written = sorted(p.relative_to(tmp_path).as_posix() for p in tmp_path.rglob("*") if p.is_file())
+    assert {"candle.glb", "garden/leaf.obj", "garden/pebble.obj"} <= set(written)
+    for rel in written:
+        assert (tmp_path / rel).read_bytes() == (SAMPLES / rel).read_bytes(), rel
+
+
 @pytest.mark.parametrize("rel", ["candle.glb", "garden/leaf.obj", "garden/pebble.obj"])
 def test_sample_assets_are_closed_and_mapped(rel):
     path = SAMPLES / rel

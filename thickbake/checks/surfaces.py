@@ -54,6 +54,7 @@ swept by revolving P.  The bound :func:`revolve` returns follows in three steps:
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -772,6 +773,10 @@ def obj_bytes(mesh: trimesh.Trimesh, *, digits: int = 10, comment: str | None = 
 
     text = export_obj(mesh, include_normals=True, include_texture=True, digits=digits, header=None,
                       mtl_name="unused.mtl")
+    # a value that rounds to zero is written "0.000…" whatever its sign: the last bit of a normal's
+    # component then cannot change the file's bytes between numpy builds (the samples must regenerate
+    # byte for byte)
+    text = re.sub(r"(?<![^\s])-(0\.0+)(?![^\s])", r"\1", text)
     lines = [ln for ln in text.splitlines() if not ln.startswith(("mtllib ", "usemtl "))]
     if comment:
         lines.insert(0, f"# {comment}")

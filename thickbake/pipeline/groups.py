@@ -108,8 +108,8 @@ def map_groups(asset, uv_set: int = 0) -> tuple[list[MapGroup], list[str]]:
     material = asset.face_material if asset.face_material is not None else np.zeros(len(has_uv), np.int64)
     materials = asset.materials or []
     groups = []
-    order = sorted({(int(m), int(t)) for m, t in zip(material[usable], tile[usable])},
-                   key=lambda mt: (_material_order(materials, mt[0]), mt[1]))
+    pairs = np.unique(np.stack([material[usable], tile[usable]], axis=1), axis=0)
+    order = sorted(((int(m), int(t)) for m, t in pairs), key=lambda mt: (_material_order(materials, mt[0]), mt[1]))
     for m, t in order:
         faces = usable & (material == m) & (tile == t)
         uv = triangle_uv - cell[:, None, :] if tiled else triangle_uv
