@@ -373,6 +373,87 @@ def test_obj_objects_and_usemtl_make_parts_and_maps(unit, small, tmp_path):
     assert load_asset(str(path)).parts == ["big", "pea"]
 
 
+_OBJ_BODY = b"""# a quad and three triangles over four corners (Wavefront OBJ: v, vt, vn, f, o, g, usemtl)
+mtllib unused.mtl
+v 0 0 0
+v 1 0 0
+v 1 1 0
+v 0 1 0
+vt 0 0
+vt 1 0
+vt 1 1
+vt 0 1
+vn 0 0 1
+f 1/1/1 2/2/1 3/3/1 4/4/1
+o box
+usemtl red
+f 1/1/1 2/2/1 3/3/1
+g side  two
+usemtl blue
+usemtl red
+f 1/1/1 3/3/1 4/4/1
+o other
+g
+s off
+f 2/2/1 3/3/1 4/4/1 1/1/1 2/2/1
+"""
+
+
+@pytest.mark.parametrize("variant, bulk", [
+    ("as written", True),
+    ("CRLF line ends", True),
+    ("tabs between tokens", True),
+    ("v//n corners", True),
+    ("v corners only", True),
+    ("no faces", True),
+    ("relative indices", False),
+    ("trailing comment", False),
+    ("leading white space", False),
+    ("one-number vt", False),
+    ("mixed corner forms", False),
+    ("line continuation", False),
+])
+def test_obj_bulk_parser_matches_the_line_parser(variant, bulk):
+    # The whole-array OBJ parser must give exactly the line-by-line parser's tables (the Wavefront OBJ
+    # statements v, vt, vn, f with polygons fanned, o/g parts, usemtl materials), and must hand every
+    # form it does not handle to the line parser instead of guessing.
+    from thickbake.pipeline import readers
+
+    body = _OBJ_BODY
+    body = {
+        "CRLF line ends": lambda b: b.replace(b"\n", b"\r\n"),
+        "tabs between tokens": lambda b: b.replace(b"v 1 1 0", b"v\t1 1\t0"),
+        "v//n corners": lambda b: b.replace(b"/1/1", b"//1").replace(b"/2/1", b"//1").replace(b"/3/1", b"//1")
+                                   .replace(b"/4/1", b"//1"),
+        "v corners only": lambda b: b.replace(b"/1/1", b"").replace(b"/2/1", b"").replace(b"/3/1", b"")
+                                     .replace(b"/4/1", b""),
+        "no faces": lambda b: b"\n".join(line for line in b.split(b"\n") if not line.startswith(b"f ")),
+        "relative indices": lambda b: b.replace(b"f 1/1/1 2/2/1 3/3/1\n", b"f -4/1/1 2/2/1 3/3/1\n"),
+        "trailing comment": lambda b: b.replace(b"v 1 1 0", b"v 1 1 0 # corner"),
+        "leading white space": lambda b: b.replace(b"v 1 1 0", b"  v 1 1 0"),
+        "one-number vt": lambda b: b.replace(b"vt 1 1", b"vt 1"),
+        "mixed corner forms": lambda b: b.replace(b"f 1/1/1 3/3/1 4/4/1", b"f 1//1 3//1 4//1"),
+        "line continuation": lambda b: b.replace(b"v 1 1 0", b"v 1 \\\n1 0"),
+    }.get(variant, lambda b: b)(body)
+    fast = readers._parse_obj_bulk(body, "asset")
+    assert (fast is not None) == bulk
+    try:
+        slow = readers._parse_obj_lines(body.decode(), "asset.obj")
+    except ThickbakeError as exc:  # the line parser refuses it (continuations are not read): so must read_obj
+        assert not bulk
+        with pytest.raises(ThickbakeError, match="line 5"):
+            readers.read_obj("asset.obj", body)
+        assert "line 5" in str(exc)
+        return
+    if bulk:
+        for a, b in zip(fast[:4], slow[:4]):
+            assert a.dtype == b.dtype and np.array_equal(a, b)
+        assert fast[4:] == slow[4:]
+    else:  # read_obj falls back to the line parser
+        result = readers.read_obj("asset.obj", body)
+        assert sum(len(p.triangles) for p in result.parts) == len(slow[3])
+
+
 def test_degenerate_triangles_bake_and_verify_agree():
     # a closed capsule-like solid with 200 zero-area slivers along its edges: neither bake nor verify may
     # call it open or inward-wound; both name the degenerate triangles
