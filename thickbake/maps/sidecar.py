@@ -24,8 +24,10 @@ texels), ``input`` {``file``, ``sha256``}, ``settings`` (map content), ``setting
   ``unprojected_texels``, ``unprojected_share``, ``unprojected_samples``, ``samples`` and
   ``distance`` {``p50``, ``p95``, ``max``} (target-to-source distance, scene units);
   ``unprojected_mask``: file name of the 8-bit mask of the unprojected texels, when one was written;
-* ``batch``: ``source``, ``requested_settings_hash``, ``inputs_sha256``, ``rules``, ``map_sha256``
-  (what :mod:`thickbake.batch.plan` needs to tell whether the map is up to date);
+* ``batch``: ``source``, ``requested_settings_hash``, ``inputs_sha256``, ``rules``, ``map_sha256``,
+  ``maps`` (every map file of the asset) and ``outputs`` (delivery file name → sha256, when there are
+  any): what :mod:`thickbake.batch.plan` needs to tell whether the maps are up to date (it finds an
+  asset's sidecars with :func:`read_batch_sidecar`);
 * ``map_sha256``: sha256 of the map file's bytes, added by :func:`with_map_checksum` when the pair is
   written.  The map is renamed into place before its sidecar, so a run killed between the two
   renames leaves a new map beside the old sidecar; readers (:meth:`Sidecar.check_map`) refuse such a
@@ -327,6 +329,23 @@ def load_sidecar_json(side: str | os.PathLike):
         raise ThickbakeError(f"the sidecar is not valid JSON ({exc})", path=side, fix="bake the map again") from None
 
 
+def read_batch_sidecar(side: str | os.PathLike, source: str) -> dict | None:
+    """The content of the sidecar file ``side`` when a batch wrote it for the asset ``source`` (its
+    ``batch.source``, the asset's path relative to the batch's source folder), else None.
+
+    Lenient on purpose: the batch uses it to find an asset's maps, and checks each with
+    :func:`parse_sidecar` before trusting it.
+
+    Raises
+    ------
+    ThickbakeError
+        The file cannot be read as JSON (see :func:`load_sidecar_json`).
+    """
+    data = load_sidecar_json(side)
+    batch = data.get("batch") if isinstance(data, dict) else None
+    return data if isinstance(batch, dict) and batch.get("source") == source else None
+
+
 def parse_sidecar(data: Any, path: str | os.PathLike) -> Sidecar:
     """Validate a sidecar dict (see :func:`read_sidecar`); ``path`` names the file in errors."""
     path = Path(path)
@@ -393,4 +412,4 @@ def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeErro
 
 __all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint", "with_error_map",
            "with_batch_record", "with_map_checksum", "Encoding", "BatchRecord", "Sidecar", "read_sidecar", "parse_sidecar",
-           "described_map"]
+           "read_batch_sidecar", "described_map"]
