@@ -275,7 +275,7 @@ def bench_incremental(assets: int, size: int, rays: int) -> dict:
     """Wall-clock of a first batch over ``assets`` UV spheres and of a second, fully skipped one."""
     import tempfile
 
-    from thickbake.batch.plan import run_batch
+    from thickbake.batch.schedule import run_batch
     from thickbake.checks import shapes
 
     with tempfile.TemporaryDirectory(prefix="thickbake-bench-") as tmp:

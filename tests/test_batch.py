@@ -23,8 +23,9 @@ import pytest
 import trimesh
 
 from thickbake import cli
-from thickbake.batch import plan as batch
+from thickbake.batch import plan as batch_plan
 from thickbake.batch import runners
+from thickbake.batch import schedule
 from thickbake.checks import shapes
 from thickbake.pipeline.load import file_sha256
 from thickbake.maps.files import read_image
@@ -138,7 +139,7 @@ def first_run(tmp_path_factory):
 def test_first_run_bakes_good_assets_and_records_failures(first_run):
     out = first_run["out"]
     assert first_run["code"] == 1, first_run["stderr"]
-    assert sorted(maps_in(out)) == sorted(batch.map_name(rel, "png") for rel in GOOD)
+    assert sorted(maps_in(out)) == sorted(batch_plan.map_name(rel, "png") for rel in GOOD)
     assert statuses(out) == {**{rel: "baked" for rel in GOOD}, **{rel: "failed" for rel in BROKEN}}
     rows = {r["source"]: r for r in report_of(out)["assets"]}
     assert "does not start with the GLB magic" in rows["broken/corrupt.glb"]["error"]
@@ -163,8 +164,8 @@ def test_rules_decide_each_assets_settings(first_run):
 
 def test_report_json_has_figures_jobs_and_threads(first_run):
     report = report_of(first_run["out"])
-    assert report["jobs"] == min(batch.available_cores(), len(GOOD) + len(BROKEN))
-    assert report["threads_per_bake"] == max(1, batch.available_cores() // report["jobs"])
+    assert report["jobs"] == min(runners.available_cores(), len(GOOD) + len(BROKEN))
+    assert report["threads_per_bake"] == max(1, runners.available_cores() // report["jobs"])
     expected = {"assets": 7, "baked": 5, "skipped": 0, "failed": 2, "not_started": 0}
     assert {key: report["totals"][key] for key in expected} == expected
     for row in report["assets"]:
@@ -306,8 +307,8 @@ def test_output_inside_source_is_not_picked_up(tmp_path):
     code, _, _ = run_cli("batch", src, "-o", out, "--jobs", "1")
     assert code == 0
     (out / "stray.obj").write_bytes((tmp_path / "copy.obj").read_bytes())   # a mesh inside OUT is ignored
-    plan = batch.plan_batch(src, out)
-    assert sorted(j.rel for j in plan.jobs) == sorted(GOOD)
+    plan = batch_plan.plan_batch(src, out)
+    assert sorted(j.asset.rel for j in plan.jobs) == sorted(GOOD)
     assert all(j.status == "skipped" for j in plan.jobs)
 
 
@@ -427,18 +428,18 @@ def test_a_second_batch_into_the_same_folder_is_refused(first_run, tmp_path):
     fcntl = pytest.importorskip("fcntl")
     out = tmp_path / "maps"
     out.mkdir()
-    with open(out / batch.LOCK_NAME, "w") as held:     # as if another batch were running
+    with open(out / schedule.LOCK_NAME, "w") as held:     # as if another batch were running
         fcntl.flock(held, fcntl.LOCK_EX)
         code, _, stderr = run_cli("batch", first_run["src"], "-o", out)
     assert code == 2 and "another 'thickbake batch' is writing into this folder" in stderr
-    assert sorted(p.name for p in out.iterdir()) == [batch.LOCK_NAME]
+    assert sorted(p.name for p in out.iterdir()) == [schedule.LOCK_NAME]
 
 
 def crashing_worker(task: dict) -> dict:
     """Stands in for a bake that takes its process down (segfault, OOM kill) on one asset."""
     if task["source"].endswith("rock.obj"):
         os._exit(3)
-    return batch.bake_asset(task)
+    return runners.bake_asset(task)
 
 
 def test_a_crashing_bake_fails_alone_and_the_rest_go_on(tmp_path):
@@ -446,7 +447,7 @@ def test_a_crashing_bake_fails_alone_and_the_rest_go_on(tmp_path):
     for rel in BROKEN:
         (src / rel).unlink()
     out = tmp_path / "maps"
-    outcome = batch.run_batch(src, out, jobs=2, worker=crashing_worker)
+    outcome = schedule.run_batch(src, out, jobs=2, worker=crashing_worker)
     assert outcome.exit_code == 1
     rows = {r["source"]: r for r in outcome.report["assets"]}
     assert rows["rock.obj"]["status"] == "failed" and "the bake process died" in rows["rock.obj"]["error"]

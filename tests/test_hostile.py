@@ -24,6 +24,7 @@ import pytest
 
 import thickbake
 from thickbake.batch import plan as batch_plan
+from thickbake.batch import schedule
 from thickbake.batch.runners import bake_asset
 from thickbake.checks import shapes
 from test_fuzz import FAST, gltf_variant, obj_text, write
@@ -114,14 +115,14 @@ def test_batch_opens_nothing_outside_its_folders(tmp_path):
         plan = batch_plan.plan_batch(src, out)
     assert outside_of(recorder.paths, roots) == []
     assert [w for w in plan.warnings if "linked.obj" in w and "outside" in w]
-    assert "linked.obj" not in [j.rel for j in plan.jobs]
-    rows = {j.rel: j for j in plan.jobs}
+    assert "linked.obj" not in [j.asset.rel for j in plan.jobs]
+    rows = {j.asset.rel: j for j in plan.jobs}
     assert rows["escape/model.gltf"].status == "failed"
-    assert "outside the asset's folder" in rows["escape/model.gltf"].error
+    assert "outside the asset's folder" in rows["escape/model.gltf"].result.error
 
     # each bake, run here rather than in a pool process so that the hook sees its opens
     with OpenRecorder() as recorder:
-        results = {job.rel: bake_asset(batch_plan._task(plan, job, 1)) for job in plan.jobs}
+        results = {job.asset.rel: bake_asset(schedule.worker_task(plan, job, 1)) for job in plan.jobs}
     assert outside_of(recorder.paths, roots) == []
     assert results["good/tetra.obj"]["status"] == "baked"
     assert results["good/model.gltf"]["status"] == "baked"
@@ -130,10 +131,10 @@ def test_batch_opens_nothing_outside_its_folders(tmp_path):
     assert "outside the asset's folder" in results["escape/model.gltf"]["error"]
 
     with OpenRecorder() as recorder:
-        outcome = batch_plan.run_batch(src, out, jobs=1)
+        outcome = schedule.run_batch(src, out, jobs=1)
     assert outside_of(recorder.paths, roots) == []
     assert outcome.exit_code == 1
-    statuses = {j.rel: j.status for j in outcome.plan.jobs}
+    statuses = {j.asset.rel: j.status for j in outcome.plan.jobs}
     assert statuses == {"good/tetra.obj": "baked", "good/model.gltf": "baked", "escape/model.gltf": "failed"}
     assert not list(out.rglob("secret*")) and not list(out.rglob("linked*"))
 

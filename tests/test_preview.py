@@ -235,7 +235,7 @@ def test_batch_previews_put_stills_and_viewer_links_in_the_report(tmp_path):
 
     from PIL import Image
 
-    from thickbake.batch.plan import run_batch
+    from thickbake.batch.schedule import run_batch
 
     src = tmp_path / "src"
     src.mkdir()

@@ -404,7 +404,7 @@ source = "{base}_high.obj"
 
 
 def test_batch_measures_low_assets_in_their_high_siblings(files, tmp_path):
-    from thickbake.batch import plan as batch
+    from thickbake.batch.schedule import run_batch
     from thickbake.maps.files import read_image
 
     _, source_path = files
@@ -416,10 +416,10 @@ def test_batch_measures_low_assets_in_their_high_siblings(files, tmp_path):
     (src / "people/bust_high.obj").write_bytes(source_path.read_bytes())
     (src / "thickbake.toml").write_text(BATCH_RULES)
     out = tmp_path / "maps"
-    outcome = batch.run_batch(src, out, jobs=1)
+    outcome = run_batch(src, out, jobs=1)
     assert outcome.exit_code == 0
     # the high mesh is an input of bust_low, not an asset: it gets no map of its own
-    assert sorted(j.rel for j in outcome.plan.jobs) == ["people/bust_low.obj"]
+    assert sorted(j.asset.rel for j in outcome.plan.jobs) == ["people/bust_low.obj"]
     assert not (out / "people/bust_high.thickness.png").exists()
     side = json.loads((out / "people/bust_low.thickness.json").read_text())
     assert side["transfer"]["sources"][0]["file"] == "bust_high.obj"
@@ -433,11 +433,11 @@ def test_batch_measures_low_assets_in_their_high_siblings(files, tmp_path):
     step = enc["scale"] / enc["code_max"] / 2
     assert values.min() >= low - step and values.max() <= high + step
     # up to date until the source changes
-    again = batch.run_batch(src, out, jobs=1)
+    again = run_batch(src, out, jobs=1)
     assert [j.status for j in again.plan.jobs] == ["skipped"]
     with open(src / "people/bust_high.obj", "a") as handle:
         handle.write("# touched\n")
-    third = batch.run_batch(src, out, jobs=1)
+    third = run_batch(src, out, jobs=1)
     assert [j.status for j in third.plan.jobs] == ["baked"]
 
 
@@ -449,7 +449,7 @@ def test_batch_measures_low_assets_in_their_high_siblings(files, tmp_path):
     ('source = "{base}_high.obj"\ncage = "{base}_cage.obj"\nsearch_distance = 0.1', "both cage"),
 ])
 def test_batch_rules_refuse_bad_transfer_keys(tmp_path, table, message):
-    from thickbake.batch import plan as batch
+    from thickbake.batch.plan import plan_batch
 
     src = tmp_path / "assets"
     src.mkdir()
@@ -458,7 +458,7 @@ def test_batch_rules_refuse_bad_transfer_keys(tmp_path, table, message):
                                                                    write_texture=False, mtl_name=None))
     (src / "thickbake.toml").write_text(f'[[rule]]\nmatch = "*"\n{table}\n')
     with pytest.raises(ThickbakeError, match=message):
-        batch.plan_batch(src, tmp_path / "out")
+        plan_batch(src, tmp_path / "out")
 
 
 def test_every_material_map_of_the_target_measures_in_the_source(source):

@@ -42,9 +42,9 @@ def batch_previews(plan, stills: bool = True, notify: Callable[[str], None] | No
     out: dict[str, dict] = {}
     for done, job in enumerate(jobs):
         started = time.perf_counter()
-        rel = page_rel(job.map_rel)
+        rel = page_rel(job.asset.map_rel)
         try:
-            preview = build_preview(job.source, _maps_of(plan, job))
+            preview = build_preview(job.asset.source, _maps_of(plan, job))
             data = preview.html.encode("utf-8")
             target = plan.out / rel
             if not (target.is_file() and target.read_bytes() == data):
@@ -53,22 +53,22 @@ def batch_previews(plan, stills: bool = True, notify: Callable[[str], None] | No
             if stills:
                 frame = render_still(preview.html, *STILL_SIZE)
                 if frame.errors or not frame.png:
-                    notify(f"warning: {job.rel}: the preview page reported {'; '.join(frame.errors)[:200] or 'no frame'}")
+                    notify(f"warning: {job.asset.rel}: the preview page reported {'; '.join(frame.errors)[:200] or 'no frame'}")
                 else:
                     still, still_seconds = frame.png, frame.seconds
         except ThickbakeError as exc:
-            notify(f"warning: {job.rel}: no preview ({exc.one_line()})")
+            notify(f"warning: {job.asset.rel}: no preview ({exc.one_line()})")
             continue
-        out[job.rel] = {"page": rel, "still": still, "seconds": time.perf_counter() - started,
+        out[job.asset.rel] = {"page": rel, "still": still, "seconds": time.perf_counter() - started,
                         "still_seconds": still_seconds}
         if progress is not None:
-            progress((done + 1) / len(jobs), 0, f"preview {job.rel}")
+            progress((done + 1) / len(jobs), 0, f"preview {job.asset.rel}")
     return out
 
 
 def _maps_of(plan, job) -> list[Path]:
     """Every map file of an asset (one per material, UV set and tile), as the batch recorded them."""
-    items = [plan.out / item["map"] for item in job.maps if item.get("map")] or [plan.out / job.map_rel]
+    items = [plan.out / item["map"] for item in job.result.maps if item.get("map")] or [plan.out / job.asset.map_rel]
     return [p for p in items if p.is_file()]
 
 

@@ -104,7 +104,7 @@ def write_reports(out_dir: str | os.PathLike, report: dict, thumbnails: dict[str
 def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: int,
                  threads: int | None, cluster: str | None, force: bool, interrupted: bool,
                  previews: dict | None = None) -> dict:
-    """The content of ``report.json`` for a :class:`thickbake.batch.BatchPlan` whose jobs have run.
+    """The content of ``report.json`` for a :class:`thickbake.batch.plan.BatchPlan` whose jobs have run.
 
     ``previews``: per asset source path, its viewer page (relative to OUT) and the seconds its page and
     still took (:func:`thickbake.batch.previews.batch_previews`).
@@ -117,7 +117,7 @@ def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: i
             row["preview_seconds"] = round(shown["seconds"], 3)
     count = {status: sum(1 for r in rows if r["status"] == status)
              for status in ("baked", "skipped", "failed", "not started")}
-    baked = [j for j in plan.jobs if j.status == "baked"]
+    baked = [j.result for j in plan.jobs if j.status == "baked"]
     return {
         "thickbake_version": __version__,
         "source": str(plan.src),
@@ -138,8 +138,8 @@ def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: i
             "skipped": count["skipped"],
             "failed": count["failed"],
             "not_started": count["not started"],
-            "rays_traced": sum(int(m["data"].get("rays_traced", 0)) for j in baked for m in j.maps),
-            "bake_seconds": round(sum(float(m["data"].get("seconds", 0.0)) for j in baked for m in j.maps), 3),
+            "rays_traced": sum(int(m["data"].get("rays_traced", 0)) for r in baked for m in r.maps),
+            "bake_seconds": round(sum(float(m["data"].get("seconds", 0.0)) for r in baked for m in r.maps), 3),
             "maps": sum(len(r["maps"]) for r in rows),
             "warnings": sum(len(r["warnings"]) for r in rows),
             **({"preview_seconds": round(sum(v["seconds"] for v in previews.values()), 3)} if previews else {}),
@@ -149,22 +149,24 @@ def build_report(plan, started_at: datetime, seconds: float, cores: int, jobs: i
 
 
 def _report_row(job) -> dict:
-    side = job.sidecar if job.status in ("baked", "skipped") and job.sidecar else {}
-    maps = [_map_row(m) for m in job.maps] if job.status in ("baked", "skipped") else []
+    """One asset in ``report.json``: its status, figures (from its first sidecar) and every map."""
+    asset, result = job.asset, job.result
+    side = result.sidecar if job.status in ("baked", "skipped") and result.sidecar else {}
+    maps = [_map_row(m) for m in result.maps] if job.status in ("baked", "skipped") else []
     # warnings come from the sidecars, so a skipped asset keeps those of the bake that made its maps
     asset_warnings = list((side.get("mesh") or {}).get("warnings", []))
     warnings = asset_warnings + [f"{PurePosixPath(m['map']).name}: {w}" for m in maps for w in m["warnings"]]
     if not maps:
-        warnings = list(job.warnings or [])
+        warnings = list(result.warnings or [])
     row = {
-        "source": job.rel,
-        "map": maps[0]["map"] if maps else job.map_rel,
-        "sidecar": maps[0]["sidecar"] if maps else job.sidecar_rel,
+        "source": asset.rel,
+        "map": maps[0]["map"] if maps else asset.map_rel,
+        "sidecar": maps[0]["sidecar"] if maps else asset.sidecar_rel,
         "maps": maps,
         "status": job.status,
         "reason": job.reason,
-        "error": job.error,
-        "failure_kind": job.failure_kind,
+        "error": result.error,
+        "failure_kind": result.failure_kind,
         "seconds": side.get("seconds"),
         "rays_traced": sum(m["rays_traced"] or 0 for m in maps) if maps else None,
         "rays_per_second": side.get("rays_per_second"),
@@ -173,19 +175,19 @@ def _report_row(job) -> dict:
         "size": side.get("size"),
         "measure": side.get("measure"),
         "settings_hash": side.get("settings_hash"),
-        "requested_settings_hash": job.requested_hash,
-        "inputs_sha256": job.inputs_sha256,
-        "settings": job.options.settings,
-        "format": job.options.format,
-        "rules": list(job.options.rules),
-        "worker_seconds": job.worker_seconds,
-        "threads": job.threads,
-        "worker": job.worker,
+        "requested_settings_hash": asset.requested_hash,
+        "inputs_sha256": asset.inputs_sha256,
+        "settings": asset.options.settings,
+        "format": asset.options.format,
+        "rules": list(asset.options.rules),
+        "worker_seconds": result.worker_seconds,
+        "threads": result.threads,
+        "worker": result.worker,
         "asset_warnings": asset_warnings,
         "warnings": warnings,
     }
-    if job.traceback:
-        row["traceback"] = job.traceback
+    if result.traceback:
+        row["traceback"] = result.traceback
     return row
 
 
@@ -203,7 +205,7 @@ def batch_thumbnails(plan) -> dict[str, bytes]:
     """Thumbnail per map (by its path relative to OUT): from the bake, or read from disk when skipped."""
     thumbs = {}
     for job in plan.jobs:
-        for item in job.maps if job.status in ("baked", "skipped") else []:
+        for item in job.result.maps if job.status in ("baked", "skipped") else []:
             picture = item.get("thumbnail") or thumbnail_from_file(plan.out / item["map"])
             if picture:
                 thumbs[item["map"]] = picture

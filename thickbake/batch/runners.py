@@ -4,7 +4,7 @@
 encoded map, its sidecar, a thumbnail) out, no files written — so the same function runs in a pool
 process on this machine or on a cluster worker, and the batch alone writes to the output folder.
 
-Both runners answer the same small interface used by :mod:`thickbake.batch`: ``capacity()`` (bakes
+Both runners answer the same small interface used by :mod:`thickbake.batch.schedule`: ``capacity()`` (bakes
 to keep in flight), ``submit(task)`` → handle, ``wait(handles, timeout)`` → finished handles,
 ``outcome(handle)`` → result dict (or :class:`WorkerDied` when a pool process died), ``restart()``,
 ``abandon()`` and ``close()``.

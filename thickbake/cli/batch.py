@@ -35,7 +35,8 @@ def add_parser(sub, common) -> None:
 
 
 def run(args) -> int:
-    from thickbake.batch.plan import format_plan, plan_batch, run_batch, summary_line
+    from thickbake.batch.plan import plan_batch
+    from thickbake.batch.schedule import run_batch
     from thickbake.cli.progress import ProgressBar
 
     if args.jobs is not None and args.jobs < 1:
@@ -73,3 +74,75 @@ def run(args) -> int:
         strict_failure(warnings)
         return EXIT_FAILED
     return outcome.exit_code
+
+
+# ---------------------------------------------------------------------------- what is printed
+def format_plan(plan) -> list[str]:
+    """Lines of ``--dry-run``: per asset what would happen, why, and its resolved settings."""
+    lines = []
+    for job in plan.jobs:
+        lines += _asset_lines(job)
+    to_bake = len(plan.to_bake())
+    skipped = sum(1 for j in plan.jobs if j.status == "skipped")
+    failed = sum(1 for j in plan.jobs if j.status == "failed")
+    lines.append(f"dry run: {len(plan.jobs)} assets under {plan.src}: {to_bake} would be baked, {skipped} skipped"
+                 + (f", {failed} would fail" if failed else "") + "; nothing was written")
+    return lines
+
+
+def _asset_lines(job) -> list[str]:
+    """What will happen to one asset and why, then its resolved settings (and its transfer)."""
+    from thickbake.settings import settings_from_mapping
+
+    asset, maps = job.asset, job.result.maps
+    action = {"bake": "bake", "skipped": "skip", "failed": "fail"}.get(job.status, job.status)
+    # an up-to-date asset of several maps (materials, tiles) lists them all; before a bake the
+    # mesh is not loaded, so only the single-map name is known
+    target = ", ".join(m["map"] for m in maps) if len(maps) > 1 else asset.map_rel
+    if job.status == "failed":
+        lines = [f"{asset.rel} -> {target}: {action}" + (f" ({job.reason})" if job.reason else "")
+                 + f": {job.result.error}"]
+    else:
+        lines = [f"{asset.rel} -> {target}: {action} ({job.reason})"]
+    content, run = settings_from_mapping(asset.options.settings)
+    settings = {**content.to_dict(), **run.to_dict()}
+    shown = " ".join(f"{k}={_setting_text(k, v)}" for k, v in settings.items())
+    rules = ", ".join(f"#{n}" for n in asset.options.rules) or "none"
+    lines.append(f"    format={asset.options.format} {shown}  [rules: {rules}]")
+    if asset.transfer:
+        how = (f"cage {asset.transfer['cage']}" if asset.transfer.get("cage") else
+               f"search distance {asset.transfer['search_distance'] or 'default'}")
+        lines.append(f"    measured in {', '.join(asset.transfer['source'])} ({how})")
+    return lines
+
+
+def _setting_text(key: str, value) -> str:
+    if value is None:
+        return "off" if key == "target_error" else "auto"
+    if key == "size":
+        return f"{value[0]}x{value[1]}"
+    if isinstance(value, bool):
+        return str(value).lower()
+    return str(value)
+
+
+def summary_line(outcome) -> str:
+    """The last line a batch prints on stdout."""
+    totals = outcome.report["totals"]
+    parts = [f"{totals['baked']} baked", f"{totals['skipped']} skipped", f"{totals['failed']} failed"]
+    if totals["not_started"]:
+        parts.append(f"{totals['not_started']} not started (interrupted)")
+    extra = ""
+    if totals.get("maps", 0) > totals["baked"] + totals["skipped"]:
+        extra += f" ({totals['maps']} maps)"
+    if totals.get("warnings"):
+        extra += f", {totals['warnings']} warning{'s' if totals['warnings'] != 1 else ''} (see the report)"
+    how = ""
+    if outcome.jobs_used:
+        how = f", {outcome.jobs_used} job{'s' if outcome.jobs_used != 1 else ''}"
+        if outcome.threads:
+            how += f" x {outcome.threads} thread{'s' if outcome.threads != 1 else ''}"
+        else:
+            how += " on the cluster"
+    report = f"report {outcome.plan.out / 'report.html'}" if outcome.report_error is None else "no report (see the error)"
+    return f"batch: {', '.join(parts)} of {totals['assets']} assets{extra} in {outcome.seconds:.1f} s{how}; {report}"
