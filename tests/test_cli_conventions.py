@@ -159,6 +159,18 @@ def test_quiet_prints_nothing_on_stdout(command, where, assets, tmp_path):
     assert proc.stdout == ""
 
 
+def test_quiet_dry_run_prints_nothing_on_stdout_and_keeps_warnings(assets, tmp_path):
+    # -q means the same for a dry run: no result lines (not even the plan's last one); warnings still on stderr
+    batch_source(tmp_path, assets)
+    with open(tmp_path / "src" / "thickbake.toml", "a") as rules:
+        rules.write('[[rule]]\nmatch = "nothing/*"\nrays = 8\n')
+    proc = run(*args_for("batch", assets, tmp_path), "--dry-run", "-q", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout == ""
+    assert "matches no asset" in one_line_error(proc.stderr)
+    assert not (tmp_path / "out").exists()
+
+
 @pytest.mark.parametrize("where", ["before", "after"])
 def test_verbose_adds_settings_and_timings_on_stderr(where, assets, tmp_path):
     argv = ["bake", assets / "box.obj", "-o", tmp_path / "m.png", *TINY]

@@ -47,9 +47,9 @@ def run(args) -> int:
             print_warnings([f"{rule.label()} matches no asset"], str(plan.rules.path))
         for text in plan.warnings:
             print(f"thickbake: warning: {one_line(text)}", file=sys.stderr)
-        lines = format_plan(plan)
-        for line in lines[-1:] if args.quiet else lines:
-            echo(line)
+        if not args.quiet:  # -q: nothing on stdout, as for every command; warnings went to stderr above
+            for line in format_plan(plan):
+                echo(line)
         return EXIT_OK
 
     bar = ProgressBar("batch", enabled=False if args.quiet else None)
