@@ -312,6 +312,22 @@ def test_output_inside_source_is_not_picked_up(tmp_path):
     assert all(j.status == "skipped" for j in plan.jobs)
 
 
+@pytest.mark.parametrize("listed", [[1], "rock.thickness.png", ["../../outside.png"], None])
+def test_a_hand_edited_list_of_maps_is_read_as_the_single_map(first_run, tmp_path, listed):
+    # batch.maps that is not a list of plain file names (a number, a string, a path leading out of the
+    # folder) reads as absent: the asset's single map is checked as usual, nothing is opened elsewhere
+    src, out = tmp_path / "assets", tmp_path / "maps"
+    shutil.copytree(first_run["src"], src)
+    shutil.copytree(first_run["out"], out)
+    side_path = out / "rock.thickness.json"
+    side = json.loads(side_path.read_text())
+    side["batch"]["maps"] = listed
+    side_path.write_text(json.dumps(side))
+    jobs = {j.asset.rel: j for j in batch_plan.plan_batch(src, out).jobs}
+    assert jobs["rock.obj"].status == "skipped", jobs["rock.obj"].reason
+    assert [m["map"] for m in jobs["rock.obj"].result.maps] == ["rock.thickness.png"]
+
+
 def test_float_tiff_format_and_gltf_buffers_count_as_input(tmp_path):
     src = tmp_path / "assets"
     write_mesh(src / "rock.obj", uv_sphere(1.0))

@@ -501,14 +501,15 @@ def _outdated_reason(job: AssetJob, out: Path) -> str | None:
     The maps of an asset are found through their sidecars (``<stem>.*.json`` in the map's folder
     whose ``batch.source`` is this asset); each lists every map of its asset under ``batch.maps``.
     """
-    from thickbake.maps.sidecar import BatchRecord, parse_sidecar
+    from thickbake.maps.sidecar import BatchRecord, batch_record, parse_sidecar
     from thickbake.pipeline.load import file_sha256
 
     asset = job.asset
     found = asset_sidecars(asset, out)
     if not found:
         return "no map yet"
-    names = found[0][1].get("batch", {}).get("maps") or [PurePosixPath(asset.map_rel).name]
+    recorded = batch_record(found[0][1]) or BatchRecord(None, None, None)
+    names = recorded.maps or [PurePosixPath(asset.map_rel).name]
     folder = PurePosixPath(asset.map_rel).parent
     expected = {PurePosixPath(n).with_suffix(".json").name for n in names}
     if {side.name for side, _ in found} != expected:
@@ -539,9 +540,7 @@ def _outdated_reason(job: AssetJob, out: Path) -> str | None:
             return "the map does not match its sidecar"
         maps.append({"map": map_rel, "sidecar": PurePosixPath(map_rel).with_suffix(".json").as_posix(), "data": data,
                      "thumbnail": None})
-    recorded = found[0][1].get("batch") if isinstance(found[0][1].get("batch"), dict) else {}
-    outputs = recorded.get("outputs") if isinstance(recorded.get("outputs"), dict) else {}
-    for name, digest in outputs.items():  # delivery files (glTF copy, packed image) beside the maps
+    for name, digest in (recorded.outputs or {}).items():  # delivery files (glTF copy, packed image)
         try:
             if file_sha256(out / folder / name) != digest:
                 return f"{name} does not match the sidecar"

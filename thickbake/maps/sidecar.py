@@ -222,11 +222,39 @@ class Encoding:
 
 @dataclass(frozen=True)
 class BatchRecord:
-    """The ``batch`` entry: what a batch run compares to decide the map is up to date."""
+    """The ``batch`` entry: what a batch run compares to decide the map is up to date.
+
+    Attributes
+    ----------
+    requested_settings_hash, inputs_sha256, map_sha256 : str or None
+    maps : tuple of str or None
+        File names (in the sidecar's folder) of every map of the asset, one per material, UV set and
+        tile; None when the entry lists none, or not as a list of plain file names.
+    outputs : dict or None
+        Delivery file name → its sha256, when the batch wrote delivery files.
+    """
 
     requested_settings_hash: str | None
     inputs_sha256: str | None
     map_sha256: str | None
+    maps: tuple[str, ...] | None = None
+    outputs: dict | None = None
+
+
+def batch_record(data: Any) -> BatchRecord | None:
+    """The ``batch`` entry of sidecar content (any JSON value), or None when it has none.
+
+    Lenient: a field of the wrong type reads as None, nothing else of the sidecar is checked.
+    """
+    batch = data.get("batch") if isinstance(data, dict) else None
+    if not isinstance(batch, dict):
+        return None
+    maps = batch.get("maps")
+    plain = isinstance(maps, list) and maps and all(isinstance(m, str) and m == Path(m).name != "" for m in maps)
+    maps = tuple(maps) if plain else None  # file names beside the sidecar, never a path elsewhere
+    outputs = batch.get("outputs") if isinstance(batch.get("outputs"), dict) else None
+    return BatchRecord(_text(batch.get("requested_settings_hash")), _text(batch.get("inputs_sha256")),
+                       _text(batch.get("map_sha256")), maps, outputs)
 
 
 @dataclass(frozen=True)
@@ -370,15 +398,10 @@ def parse_sidecar(data: Any, path: str | os.PathLike) -> Sidecar:
     coverage = data.get("coverage")
     coverage = None if coverage is None else _number(coverage, path, "coverage")
     source = data.get("input") if isinstance(data.get("input"), dict) else {}
-    batch = data.get("batch")
-    record = None
-    if isinstance(batch, dict):
-        record = BatchRecord(_text(batch.get("requested_settings_hash")), _text(batch.get("inputs_sha256")),
-                             _text(batch.get("map_sha256")))
     return Sidecar(path=path, measure=measure_named(measure), reach=reach,
                    encoding=Encoding(None if code_max is None else int(code_max), offset, scale),
                    coverage=coverage, version=_text(data.get("thickbake_version")), map_name=_text(data.get("map")),
-                   input_sha256=_text(source.get("sha256")), batch=record, data=data,
+                   input_sha256=_text(source.get("sha256")), batch=batch_record(data), data=data,
                    map_sha256=_text(data.get("map_sha256")))
 
 
@@ -411,5 +434,5 @@ def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeErro
 
 
 __all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint", "with_error_map",
-           "with_batch_record", "with_map_checksum", "Encoding", "BatchRecord", "Sidecar", "read_sidecar", "parse_sidecar",
+           "with_batch_record", "with_map_checksum", "Encoding", "BatchRecord", "batch_record", "Sidecar", "read_sidecar", "parse_sidecar",
            "read_batch_sidecar", "described_map"]
