@@ -33,37 +33,44 @@ def batch_previews(plan, stills: bool = True, notify: Callable[[str], None] | No
 
     An asset whose preview fails gets a warning through ``notify`` and no entry; the batch goes on.
     """
-    from thickbake.maps.files import atomic_write_bytes
-    from thickbake.preview.page import build_preview
-    from thickbake.preview.still import render_still
-
     notify = notify or (lambda text: None)
     jobs = [j for j in plan.jobs if j.status in ("baked", "skipped") and _maps_of(plan, j)]
     out: dict[str, dict] = {}
     for done, job in enumerate(jobs):
-        started = time.perf_counter()
-        rel = page_rel(job.asset.map_rel)
-        try:
-            preview = build_preview(job.asset.source, _maps_of(plan, job))
-            data = preview.html.encode("utf-8")
-            target = plan.out / rel
-            if not (target.is_file() and target.read_bytes() == data):
-                atomic_write_bytes(target, data)
-            still, still_seconds = None, None
-            if stills:
-                frame = render_still(preview.html, *STILL_SIZE)
-                if frame.errors or not frame.png:
-                    notify(f"warning: {job.asset.rel}: the preview page reported {'; '.join(frame.errors)[:200] or 'no frame'}")
-                else:
-                    still, still_seconds = frame.png, frame.seconds
-        except ThickbakeError as exc:
-            notify(f"warning: {job.asset.rel}: no preview ({exc.one_line()})")
+        shown = _preview(plan, job, stills, notify)
+        if shown is None:
             continue
-        out[job.asset.rel] = {"page": rel, "still": still, "seconds": time.perf_counter() - started,
-                        "still_seconds": still_seconds}
+        out[job.asset.rel] = shown
         if progress is not None:
             progress((done + 1) / len(jobs), 0, f"preview {job.asset.rel}")
     return out
+
+
+def _preview(plan, job, stills: bool, notify: Callable[[str], None]) -> dict | None:
+    """Write one asset's viewer page (unless its bytes are already there) and render its still; the
+    entry :func:`batch_previews` returns for it, or None (after a warning) when its preview failed."""
+    from thickbake.maps.files import atomic_write_bytes
+    from thickbake.preview.page import build_preview
+    from thickbake.preview.still import render_still
+
+    started = time.perf_counter()
+    rel = page_rel(job.asset.map_rel)
+    try:
+        preview = build_preview(job.asset.source, _maps_of(plan, job))
+        data = preview.html.encode("utf-8")
+        target = plan.out / rel
+        if not (target.is_file() and target.read_bytes() == data):
+            atomic_write_bytes(target, data)
+        frame = render_still(preview.html, *STILL_SIZE) if stills else None
+    except ThickbakeError as exc:
+        notify(f"warning: {job.asset.rel}: no preview ({exc.one_line()})")
+        return None
+    still, still_seconds = None, None
+    if frame is not None and (frame.errors or not frame.png):
+        notify(f"warning: {job.asset.rel}: the preview page reported {'; '.join(frame.errors)[:200] or 'no frame'}")
+    elif frame is not None:
+        still, still_seconds = frame.png, frame.seconds
+    return {"page": rel, "still": still, "seconds": time.perf_counter() - started, "still_seconds": still_seconds}
 
 
 def _maps_of(plan, job) -> list[Path]:
