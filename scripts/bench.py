@@ -30,6 +30,7 @@ Machines are shared and noisy: only ratios measured in the same run mean anythin
     python scripts/bench.py --size 512      # a quarter of the throughput rays
     python scripts/bench.py --quick         # tiny smoke run (seconds)
     python scripts/bench.py --memory-size 4096
+    python scripts/bench.py --only-adaptive # only the adaptive-rays section (~1 min)
 """
 
 from __future__ import annotations
@@ -235,6 +236,32 @@ def bench_adaptive(mesh, size: int, cap: int, reference_factor: int = 16) -> dic
             "rms_fixed": rms_fixed, "rays_fixed": fixed.info["rays_traced"], "targets": rows}
 
 
+def adaptive_section(quick: bool = False) -> dict:
+    """Print the adaptive-rays section (shell-and-ball body and the bundled sample); returns its figures."""
+    from thickbake.checks import shapes
+
+    adaptive_size = 32 if quick else 192
+    # a leaf-thin shell (wall 0.5% of its radius) beside a solid ball of half its radius; 88% of
+    # the texels lie on the shell
+    cases = [("shell + ball", shapes.shell_and_ball(wall_thickness=0.005, ball_radius=0.5).mesh)]
+    sample = ROOT / "samples" / "candle.glb"
+    if sample.exists():
+        cases.append(("samples/candle.glb", str(sample)))
+    figures = {}
+    cap = 64
+    print(f"\n== adaptive rays: {adaptive_size}² map, cap {cap} rays, p95 |error| vs a {16 * cap}-ray reference; "
+          "E = the fixed bake's p95 or RMS error x 1, 1/2, 1/4 (goal: same p95 with <= 35% of the rays)")
+    for label, mesh in cases:
+        a = bench_adaptive(mesh, adaptive_size, cap)
+        figures[label] = a
+        print(f"{label}: fixed p95 {a['p95_fixed']:.3g}, RMS {a['rms_fixed']:.3g}")
+        for row in a["targets"]:
+            print(f"   E = {row['fraction']:<4g} x {row['basis']} = {row['target_error']:.3g}: adaptive p95 "
+                  f"{row['p95_adaptive']:.3g} ({row['p95_adaptive'] / a['p95_fixed']:.3f} of fixed), "
+                  f"rays {row['ray_share']:.1%} of fixed")
+    return figures
+
+
 def bench_order_chunks(asset, size: int, rays: int, threads: int) -> dict:
     out = {}
     for label, options in (("Z order, 2^18 (default)", {}),
@@ -307,9 +334,16 @@ def main(argv=None) -> int:
     parser.add_argument("--rounds", type=int, default=2, help="interleaved timing rounds, best of each kept (default 2)")
     parser.add_argument("--quick", action="store_true", help="tiny sizes: checks the script runs")
     parser.add_argument("--json", metavar="FILE", help="write all figures as JSON")
+    parser.add_argument("--only-adaptive", action="store_true",
+                        help="run only the adaptive-rays section (calibration: scripts/calibration.py)")
     args = parser.parse_args(argv)
     if args.quick:
         args.size, args.rays, args.faces, args.c_rays = 64, 16, 2000, 2000
+    if args.only_adaptive:
+        figures = {"adaptive": adaptive_section(args.quick)}
+        if args.json:
+            Path(args.json).write_text(json.dumps(figures, indent=2) + "\n")
+        return 0
 
     figures: dict = {"machine": {"cores": os.cpu_count(), "python": sys.version.split()[0]}}
     asset = load_asset(bumpy_torus(args.faces))
@@ -352,25 +386,7 @@ def main(argv=None) -> int:
     figures["calibration"] = [row.to_dict() for row in cal]
     print("\n".join(table_lines(cal)))
 
-    adaptive_size = 32 if args.quick else 192
-    # a leaf-thin shell (wall 0.5% of its radius) beside a solid ball of half its radius; 88% of
-    # the texels lie on the shell
-    cases = [("shell + ball", shapes.shell_and_ball(wall_thickness=0.005, ball_radius=0.5).mesh)]
-    sample = ROOT / "samples" / "candle.glb"
-    if sample.exists():
-        cases.append(("samples/candle.glb", str(sample)))
-    figures["adaptive"] = {}
-    cap = 64
-    print(f"\n== adaptive rays: {adaptive_size}² map, cap {cap} rays, p95 |error| vs a {16 * cap}-ray reference; "
-          "E = the fixed bake's p95 or RMS error x 1, 1/2, 1/4 (goal: same p95 with <= 35% of the rays)")
-    for label, mesh in cases:
-        a = bench_adaptive(mesh, adaptive_size, cap)
-        figures["adaptive"][label] = a
-        print(f"{label}: fixed p95 {a['p95_fixed']:.3g}, RMS {a['rms_fixed']:.3g}")
-        for row in a["targets"]:
-            print(f"   E = {row['fraction']:<4g} x {row['basis']} = {row['target_error']:.3g}: adaptive p95 "
-                  f"{row['p95_adaptive']:.3g} ({row['p95_adaptive'] / a['p95_fixed']:.3f} of fixed), "
-                  f"rays {row['ray_share']:.1%} of fixed")
+    figures["adaptive"] = adaptive_section(args.quick)
 
     o = bench_order_chunks(asset, args.size, args.rays, args.threads)
     figures["order_chunks"] = o

@@ -14,6 +14,8 @@ import pytest
 
 import thickbake
 from thickbake.checks import shapes
+from thickbake.pipeline.driver import _needs_more, _ray_schedule
+from thickbake.pipeline.measures import Moments
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -25,16 +27,20 @@ def sphere():
 
 def test_adaptive_meets_target_on_sphere(sphere):
     # sphere R = 1, cosine lobe, closed form 4R/3 (chord 2R cosθ averaged over the cosine lobe).
-    # A texel stops once its replicate standard error and its 4x4 block's pooled one are both at most
-    # E, so every texel that stopped before the cap reports σ̂ <= E; since the error bars are
-    # calibrated (tests/test_error_bars.py), the RMS of the actual errors is then at most E, up to the
-    # sampling spread of an RMS over n ≈ 2,700 texels (relative sd sqrt(1/(2n)) ≈ 1.4%; 4 sd = 6%).
+    # A sample stops once its moderated variance (own replicate variance shrunk towards its 4x4 block's
+    # active samples) is at most E², so the texels that stopped before the cap report moderated σ̃ of
+    # at most about E (the map's σ̃ pools the same neighbours, so their RMS is at most E); since the
+    # error bars are calibrated (tests/test_error_bars.py), the RMS of the actual errors is then at
+    # most E, up to the sampling spread of an RMS over n ≈ 2,700 texels (relative sd sqrt(1/(2n)) ≈
+    # 1.4%; 4 sd = 6%).
     target, cap = 0.03, 256
     adaptive = thickbake.bake(sphere.mesh, size=64, rays=cap, target_error=target)
     rays = adaptive.rays[adaptive.covered]
     early = rays < cap
     assert early.mean() > 0.99
-    assert (adaptive.stderr[adaptive.covered][early] <= target).all()
+    assert math.sqrt(np.mean(np.square(adaptive.stderr[adaptive.covered][early]))) <= target
+    # the ladder of batch ends: 8, 12, 16, 24, 32, 48, 64, … (steps of about √2)
+    assert set(np.unique(rays)) <= {8, 12, 16, 24, 32, 48, 64, 96, 128, 192, 256}
     err = adaptive.values[adaptive.covered] - 4 / 3
     assert math.sqrt(np.mean(err ** 2)) <= target * 1.06
     assert adaptive.info["rays_saved"] + adaptive.info["rays_traced"] == adaptive.covered.sum() * cap
@@ -45,6 +51,37 @@ def test_adaptive_meets_target_on_sphere(sphere):
         fixed = thickbake.bake(sphere.mesh, size=64, rays=int(n))
         same = rays == n
         assert np.array_equal(fixed.values[fixed.covered][same], adaptive.values[adaptive.covered][same])
+
+
+def test_ray_ladder_steps_by_about_root_two_and_ends_on_the_cap():
+    assert _ray_schedule(64, True) == [(0, 8), (8, 12), (12, 16), (16, 24), (24, 32), (32, 48), (48, 64)]
+    assert _ray_schedule(52, True)[-1] == (48, 52)
+    assert _ray_schedule(64, False) == [(0, 64)] and _ray_schedule(8, True) == [(0, 8)]
+    # every batch covers whole rounds of the R = 4 replicates
+    assert all(a % 4 == 0 for a, _ in _ray_schedule(256, True))
+
+
+def test_stopping_rule_borrows_from_agreeing_neighbours_only():
+    # 16 samples of one block, 8 rays each (2 per replicate).  Their true variances agree, but some
+    # report a spread above E² by chance: with neighbours that agree (d0 = inf, Smyth's estimator on the
+    # block) every sample is judged on the block's pooled variance, 48 dof, so all stop together.
+    rng = np.random.default_rng(3)
+    m = Moments(32, 4)
+    m.add(np.arange(16), rng.normal(1.0, 0.1, (16, 8)))
+    # a second block: 15 quiet samples and one whose replicate means spread 100× more (a thick part
+    # beside a thin one): the block's spread lowers the prior weight, so its own spread decides and it
+    # goes on (its quiet neighbours may go on too: the prior is their neighbours' mean variance)
+    quiet = rng.normal(1.0, 0.01, (16, 8))
+    quiet[0, :4] += [-5.0, 5.0, -5.0, 5.0]
+    m.add(np.arange(16, 32), quiet)
+    var = np.square(m.stderr())
+    block = np.repeat([0, 1], 16)
+    pooled = var[:16].mean()
+    more = _needs_more(m, np.arange(32), block, math.sqrt(pooled) * 1.01, 64)
+    assert not more[:16].any() and (var[:16] > pooled * 1.01 ** 2).any()
+    assert more[16]
+    # a sample at the cap never goes on
+    assert not _needs_more(m, np.arange(32), block, 1e-9, 8).any()
 
 
 def test_adaptive_spends_more_rays_on_thick_parts():

@@ -135,12 +135,16 @@ def test_bias_correction_on_the_hemisphere():
 def test_standard_error_map_is_calibrated():
     # With independent random directions a texel's error (mean − expected) divided by its reported
     # standard error is a Student-like statistic: the share of texels within ±1.96 standard errors is
-    # what the same statistic gives on simulated rays.  The reported standard error is the spread of
-    # R = 4 replicate means (rays j ≡ r mod 4; randomised-QMC replicates, Owen 1997), so the simulation
-    # forms the same statistic: sample standard deviation of the 4 replicate means over √4.  The reference share is simulated here with
-    # numpy from the exact per-ray law on the sphere (cosine lobe: cosθ = √u, value offset_chord), not
-    # with the package.  Texels are independent (each has its own random stream), so the bake's share has
-    # binomial spread √(p(1−p)/m) (REFERENCES.md, "Error bars"); the facet error (≤ 2δ per texel, see
+    # what the same statistic gives on simulated rays.  The reported standard error starts from the spread
+    # of R = 4 replicate means (rays j ≡ r mod 4; randomised-QMC replicates, Owen 1997) and is moderated
+    # with the texel's aligned 4×4 block (Smyth 2004, eq. 7); on the sphere every texel has the same
+    # variance, so the prior degrees of freedom come out unbounded and σ̃² is the mean over the block's
+    # covered texels of their replicate variances.  The simulation forms the same statistic on the bake's
+    # own covered mask: per texel the sample standard deviation of its 4 replicate means over √4, squared,
+    # averaged over its block.  The reference share is simulated here with numpy from the exact per-ray
+    # law on the sphere (cosine lobe: cosθ = √u, value offset_chord), not with the package.  Texels are
+    # independent (each has its own random stream), so the bake's share has binomial spread √(p(1−p)/m)
+    # (REFERENCES.md, "Error bars"); the facet error (≤ 2δ per texel, see
     # test_bias_correction_on_the_hemisphere) moves each texel's statistic by at most 2δ/se, bracketed by
     # shifting the simulated statistic by that much either way.  Allowance: 4 binomial standard deviations
     # of the bake's share plus 4 of the simulation's.  A standard-error map off by 2× either way moves the
@@ -148,6 +152,7 @@ def test_standard_error_map_is_calibrated():
     sphere = shapes.sphere(radius=1.0)
     rays = 64
     result = thickbake.bake(sphere.mesh, size=96, rays=rays, sequence="random")
+    assert result.info["stderr_dof"]["prior"] is None
     bias = result.settings.bias
     covered = result.covered
     values = result.values[covered].astype(np.float64)
@@ -155,11 +160,22 @@ def test_standard_error_map_is_calibrated():
     expected = lobe_mean(lambda mu: offset_chord(mu, 1.0, bias), "cosine")
     share = float(np.mean(np.abs(values - expected) <= 1.96 * stderr))
 
-    sims = 100_000
-    draws = offset_chord(np.sqrt(np.random.default_rng(11).random((sims, rays))), 1.0, bias)
-    sim_err = draws.mean(axis=1) - expected
-    replicate_means = draws.reshape(sims, rays // 4, 4).mean(axis=1)
-    sim_se = replicate_means.std(axis=1, ddof=1) / math.sqrt(4)
+    n = int(covered.sum())
+    repeats = max(1, 100_000 // n)
+    sims = repeats * n
+    rng = np.random.default_rng(11)
+    blocks = covered.reshape(24, 4, 24, 4)
+    in_block = blocks.sum(axis=(1, 3))
+    sim_err, sim_se = [], []
+    for _ in range(repeats):
+        draws = offset_chord(np.sqrt(rng.random((n, rays))), 1.0, bias)
+        sim_err.append(draws.mean(axis=1) - expected)
+        replicate_means = draws.reshape(n, rays // 4, 4).mean(axis=1)
+        own = np.zeros(covered.shape)
+        own[covered] = replicate_means.var(axis=1, ddof=1) / 4
+        pooled = own.reshape(24, 4, 24, 4).sum(axis=(1, 3)) / np.maximum(in_block, 1)
+        sim_se.append(np.sqrt(np.kron(pooled, np.ones((4, 4)))[covered]))
+    sim_err, sim_se = np.concatenate(sim_err), np.concatenate(sim_se)
     shift = 2 * sphere.facet_error
     p_low = float(np.mean(np.abs(sim_err) + shift <= 1.96 * sim_se))
     p_high = float(np.mean(np.abs(sim_err) - shift <= 1.96 * sim_se))

@@ -1,10 +1,13 @@
 """Calibration of the per-texel error bars: do the stated intervals cover the truth as often as they claim?
 
-A bake reports, per texel, an estimate x̂ and a standard error σ̂ from R independent replicates
-(:mod:`thickbake.pipeline.measures`).  The stated intervals are x̂ ± k·σ̂ with k the Student-t quantile
-for R − 1 degrees of freedom (:func:`thickbake.pipeline.measures.coverage_factor`): 3.18 for "95%" and
-1.20 for "68.3%" ("one standard error" of a normal estimate) at R = 4.  Calibration is the share of
-covered texels whose actual error lies inside each band; a calibrated bake gives 0.95 and 0.683.
+A bake reports, per texel, an estimate x̂, a standard error σ̃ — its R = 4 replicates' standard error
+moderated with its neighbours' (:func:`thickbake.pipeline.measures.moderated_stderr_map`) — and the
+degrees of freedom of σ̃ (``BakeResult.stderr_dof``, d₀ᵢ + R − 1).  The stated intervals are x̂ ± k·σ̃ with
+k the Student-t quantile on those degrees of freedom
+(:func:`thickbake.pipeline.measures.dof_coverage_factor`): 2.01 for "95%" and 1.01 for "68.3%" ("one
+standard error" of a normal estimate) where a texel's 4×4 block shares one variance (48 dof), up to
+3.18 and 1.20 for a texel without neighbours (3 dof).  Calibration is the share of covered texels whose
+actual error lies inside each band; a calibrated bake gives 0.95 and 0.683.
 
 Two kinds of truth:
 
@@ -50,9 +53,13 @@ class CalibrationRow:
     texels : int
         Covered texels compared.
     share_95, share_1sigma : float
-        Share of texels whose |error| ≤ k95·σ̂ and ≤ k68·σ̂.
+        Share of texels whose |error| ≤ k95·σ̃ and ≤ k68·σ̃.
     k95, k1sigma : float
-        Coverage factors used (Student-t, R − 1 dof).
+        Median over the texels of the coverage factors used (Student-t on each texel's dof).
+    dof_median : float
+        Median degrees of freedom of σ̃.
+    prior_dof : float or None
+        The bake's d₀ (None: unbounded, neighbours share one variance).
     binomial_sd_95, binomial_sd_1sigma : float
         sqrt(p(1 − p)/n) at the nominal p.
     rms_error, rms_stderr : float
@@ -73,12 +80,14 @@ class CalibrationRow:
     binomial_sd_1sigma: float
     rms_error: float
     rms_stderr: float
+    dof_median: float = 3.0
+    prior_dof: float | None = None
 
     def to_dict(self) -> dict:
         return asdict(self)
 
 
-def band_shares(error: np.ndarray, stderr: np.ndarray, replicates: int) -> tuple[float, float, float, float]:
+def band_shares(error: np.ndarray, stderr: np.ndarray, dof) -> tuple[float, float, float, float]:
     """Shares of texels inside the 95% and 68.3% bands.
 
     Parameters
@@ -87,20 +96,21 @@ def band_shares(error: np.ndarray, stderr: np.ndarray, replicates: int) -> tuple
         Actual error of each texel (measure units).
     stderr : (n,) float
         Reported standard error of each texel (measure units).
-    replicates : int
-        R of the bake (sets the Student-t degrees of freedom).
+    dof : float or (n,) float
+        Degrees of freedom of each standard error (``BakeResult.stderr_dof``).
 
     Returns
     -------
     share_95, share_1sigma, k95, k1sigma : float
+        The k are the medians of the per-texel factors.
     """
-    from thickbake.pipeline.measures import coverage_factor
+    from thickbake.pipeline.measures import dof_coverage_factor
 
-    k95 = coverage_factor(LEVEL_95, replicates)
-    k1 = coverage_factor(LEVEL_1SIGMA, replicates)
+    k95 = np.broadcast_to(dof_coverage_factor(LEVEL_95, dof), np.shape(error))
+    k1 = np.broadcast_to(dof_coverage_factor(LEVEL_1SIGMA, dof), np.shape(error))
     z = np.abs(np.asarray(error, np.float64))
     s = np.asarray(stderr, np.float64)
-    return float(np.mean(z <= k95 * s)), float(np.mean(z <= k1 * s)), k95, k1
+    return float(np.mean(z <= k95 * s)), float(np.mean(z <= k1 * s)), float(np.median(k95)), float(np.median(k1))
 
 
 def calibrate(body: str, mesh, rays: int, lobe: str, cone: float, *, size: int = 64, expected: float | None = None,
@@ -121,7 +131,6 @@ def calibrate(body: str, mesh, rays: int, lobe: str, cone: float, *, size: int =
         Closed-form value of every texel; without it the truth is a bake with
         :data:`REFERENCE_FACTOR` × ``rays`` and ``reference_seed``.
     """
-    from thickbake.pipeline.directions import replicate_count, rays_per_sample
     from thickbake.pipeline.driver import bake
 
     options = dict(size=size, lobe=lobe, cone=cone)
@@ -139,13 +148,15 @@ def calibrate(body: str, mesh, rays: int, lobe: str, cone: float, *, size: int =
         truth = "closed form"
     error = result.values[cov].astype(np.float64) - truth_values
     stderr = result.stderr[cov].astype(np.float64)
-    share95, share1, k95, k1 = band_shares(error, stderr, replicate_count(rays_per_sample(rays)))
+    dof = result.stderr_dof[cov].astype(np.float64)
+    share95, share1, k95, k1 = band_shares(error, stderr, dof)
     n = int(cov.sum())
     return CalibrationRow(body=body, truth=truth, rays=rays, lobe=lobe, cone=float(cone), texels=n,
                           share_95=share95, share_1sigma=share1, k95=k95, k1sigma=k1,
                           binomial_sd_95=math.sqrt(LEVEL_95 * (1 - LEVEL_95) / n),
                           binomial_sd_1sigma=math.sqrt(LEVEL_1SIGMA * (1 - LEVEL_1SIGMA) / n),
-                          rms_error=float(np.sqrt(np.mean(error ** 2))), rms_stderr=float(np.sqrt(np.mean(stderr ** 2))))
+                          rms_error=float(np.sqrt(np.mean(error ** 2))), rms_stderr=float(np.sqrt(np.mean(stderr ** 2))),
+                          dof_median=float(np.median(dof)), prior_dof=result.info["stderr_dof"]["prior"])
 
 
 def fine_sphere(radius: float = 1.0):
@@ -191,18 +202,20 @@ def calibration_table(rays_list=(16, 64, 256), lobes=("cosine", "uniform"), cone
 def table_lines(rows: list[CalibrationRow]) -> list[str]:
     """The calibration table as text lines (one row per body and setting, the targets in the header)."""
     out = [f"{'body':<22} {'truth':<18} {'rays':>5} {'lobe':<8} {'cone':>5} {'texels':>6}  {'in 95% band':>11} "
-           f"{'in 68.3% band':>13}  {'RMS error':>9} {'RMS σ̂':>9}"]
+           f"{'in 68.3% band':>13}  {'RMS error':>9} {'RMS σ̃':>9} {'d₀':>6} {'dof':>5}"]
     for r in rows:
         flag95 = "" if abs(r.share_95 - LEVEL_95) <= 0.03 else " *"
         flag68 = "" if abs(r.share_1sigma - LEVEL_1SIGMA) <= 0.05 else " *"
+        prior = "inf" if r.prior_dof is None else f"{r.prior_dof:.3g}"
         out.append(f"{r.body:<22} {r.truth:<18} {r.rays:>5} {r.lobe:<8} {r.cone:>5g} {r.texels:>6}  "
                    f"{r.share_95:>9.3f}{flag95:<2} {r.share_1sigma:>11.3f}{flag68:<2}  {r.rms_error:>9.3g} "
-                   f"{r.rms_stderr:>9.3g}")
+                   f"{r.rms_stderr:>9.3g} {prior:>6} {r.dof_median:>5.3g}")
     if rows:
         r = rows[0]
-        out.append(f"bands: ±{r.k95:.2f}σ̂ and ±{r.k1sigma:.2f}σ̂ (Student-t, R − 1 = 3 dof); * = outside 0.95 ± 0.03 "
-                   f"or 0.683 ± 0.05; binomial sd of a share over n texels: sqrt(p(1 − p)/n), e.g. "
-                   f"{r.binomial_sd_95:.3f} at n = {r.texels}")
+        out.append("bands: ±t·σ̃ on each texel's degrees of freedom (d₀ᵢ + 3; median column dof, e.g. "
+                   f"±{r.k95:.2f}σ̃ and ±{r.k1sigma:.2f}σ̃ at {r.dof_median:.3g} dof); d₀ = the bake's prior degrees of "
+                   "freedom (Smyth 2004); * = outside 0.95 ± 0.03 or 0.683 ± 0.05; binomial sd of a share over n "
+                   f"texels: sqrt(p(1 − p)/n), e.g. {r.binomial_sd_95:.3f} at n = {r.texels}")
     return out
 
 

@@ -40,8 +40,10 @@ Tolerances (all derived, see :mod:`thickbake.tolerance`):
   the bake's standard-error map (replicate standard errors, :mod:`thickbake.measures`; the sphere's
   texels share one σ by symmetry), k the Student-t quantile for n·(R − 1) degrees of freedom at
   two-sided level 10⁻³/n (Bonferroni over the n texels): about 5.7σ_pool at 65,536 texels;
-* per texel, 95% of texels: |error| ≤ systematic + 3.18·σ̂ (each texel's calibrated 95% band, Student-t
-  with R − 1 = 3 dof) for all but 5% + 0.03 (calibration slack) + 4 binomial sd of the texels;
+* per texel, 95% of texels: |error| ≤ systematic + t·σ̃ (each texel's calibrated 95% band: Student-t on
+  the moderated standard error's own degrees of freedom, ``BakeResult.stderr_dof`` — 2.01σ̃ at 48 dof
+  where a 4×4 block shares one variance, up to 3.18σ̃ at 3 dof) for all but 5% + 0.03 (calibration
+  slack) + 4 binomial sd of the texels;
 * systematic = facet + bias + float32 + ½ code step.  Sphere: the lobe average of
   e(x) = min((2δ + b(1 − x²))/x, 2Rx + √(2R(δ + b)) + b) (δ = facet bound, b = bias; first order
   in δ/R, crude bound near grazing) plus a shading-normal tilt term 2R·sin ε.  Along the normal:
@@ -252,7 +254,7 @@ def _per_texel_row(subject: str, quantity: str, result, expected_t: np.ndarray, 
                    excluded_t: np.ndarray, sys_terms: str, settings, extra_note: str = "") -> Check:
     """Compare a map texel by texel with expected values and systematic bounds (all (h·w,))."""
     from thickbake.checks.error_budget import CALIBRATION_SLACK, FAMILY_ALPHA, LEVEL_95, bonferroni_k
-    from thickbake.pipeline.measures import coverage_factor
+    from thickbake.pipeline.measures import dof_coverage_factor
 
     covered = result.covered.ravel()
     use = covered & ~excluded_t
@@ -270,9 +272,12 @@ def _per_texel_row(subject: str, quantity: str, result, expected_t: np.ndarray, 
     sigma_pool = float(np.sqrt(np.mean(sigma * sigma))) if dof >= 1 else 0.0
     k_max = bonferroni_k(n, n * dof, FAMILY_ALPHA)
     bound_max = systematic + k_max * sigma_pool
-    # 95% of texels: each texel's own calibrated 95% band (Student-t, R − 1 dof)
-    k95 = coverage_factor(LEVEL_95, dof + 1) if dof >= 1 else 0.0
-    bound_95 = systematic + k95 * sigma
+    # 95% of texels: each texel's own calibrated 95% band (Student-t on its moderated σ̃'s dof)
+    texel_dof = (result.stderr_dof.ravel().astype(np.float64)[use] if result.stderr_dof is not None
+                 else np.full(n, float(dof)))
+    k95_t = dof_coverage_factor(LEVEL_95, texel_dof) if dof >= 1 else np.zeros(n)
+    k95 = float(np.median(k95_t))
+    bound_95 = systematic + k95_t * sigma
     allowed_95 = (1 - LEVEL_95) + CALIBRATION_SLACK + 4 * math.sqrt(LEVEL_95 * (1 - LEVEL_95) / n)
     over_max = error > bound_max
     share_95 = float(np.mean(error > bound_95))
@@ -280,7 +285,8 @@ def _per_texel_row(subject: str, quantity: str, result, expected_t: np.ndarray, 
     if dof >= 1:
         stat = (f"{k_max:.2f}σ_pool every texel (σ_pool {sigma_pool:.3g}: RMS of the texels' replicate standard "
                 f"errors, {n * dof:,} dof; Bonferroni over {n:,} texels, family-wise {FAMILY_ALPHA:g}) and the "
-                f"calibrated 95% band {k95:.2f}σ̂ (Student-t, {dof} dof) for all but {allowed_95:.1%} of texels "
+                f"calibrated 95% band t·σ̃ (Student-t on each texel's moderated dof, median {k95:.2f}σ̃ at "
+                f"{float(np.median(texel_dof)):.3g} dof) for all but {allowed_95:.1%} of texels "
                 f"(5% + calibration slack {CALIBRATION_SLACK:g} + 4 binomial sd)")
     else:
         stat = "no statistical term (one ray per sample" + (", deterministic)" if settings.cone == 0 else ")")

@@ -25,7 +25,7 @@ from thickbake.pipeline.directions import ray_directions, rays_per_sample as tra
 from thickbake.maps.encode import normalise, quantise
 from thickbake.errors import ThickbakeError
 from thickbake.measures import measure_named
-from thickbake.pipeline.measures import Moments, texel_reduce
+from thickbake.pipeline.measures import Moments, block_labels, moderated_stderr_map, moderated_variance, prior_dof, texel_reduce
 from thickbake.pipeline.load import Asset, load_asset
 from thickbake.pipeline.finish import fit_reach, medium_record, medium_scale
 from thickbake.maps.files import check_output_path, write_map
@@ -39,21 +39,13 @@ from thickbake.pipeline.origins import inward_origins
 from thickbake.pipeline.transfer import Transfer
 from thickbake.pipeline.texels import morton_order, pixel_triangles, place_samples, rasterise_tile, tile_buckets
 
-#: First batch of rays per sample in adaptive mode; later batches double the count, so every sample
-#: ends on a power-of-two prefix of each replicate's low-discrepancy sequence.  8 rays are two points
-#: per replicate (R = 4): the fewest that still give every replicate a stratified pair.  The standard
-#: error always has R − 1 = 3 degrees of freedom whatever the batch, so a larger first batch would not
-#: steady it; the pooling below does.
+#: First batch of rays per sample in adaptive mode: two points per replicate (R = 4), the fewest that
+#: still give every replicate a stratified pair.
 ADAPTIVE_FIRST_BATCH = 8
-#: Side, in texels, of the aligned blocks over which adaptive sampling pools its variance estimates.
-#: A replicate standard error has only 3 degrees of freedom, and on a skewed integrand (a thin wall,
-#: where a few grazing rays carry long chords) a sample whose first rays all miss the tail reports a
-#: tiny spread and would stop with a large error.  Neighbouring samples see nearly the same integrand
-#: with independent randomisations, so the mean of their squared standard errors estimates the local
-#: variance with many more degrees of freedom (pooled variance, as in a one-way analysis of variance).
-#: A sample goes on while its own *or* its block's pooled standard error exceeds the target.  Blocks
-#: are aligned to multiples of 4 texels, and tiles are aligned powers of two ≥ 16, so a block never
-#: straddles tiles and the map does not depend on the tiling.
+#: Side, in texels, of the aligned blocks whose samples lend each other strength when adaptive
+#: sampling decides whether a sample needs more rays (:func:`thickbake.pipeline.measures.moderated_variance`).
+#: Blocks are aligned to multiples of 4 texels and tiles are aligned powers of two ≥ 16, so a block
+#: never straddles tiles and the map does not depend on the tiling.
 ADAPTIVE_POOL_BLOCK = 4
 #: Rays generated and traced per engine call.  Small enough that the direction arrays of one call
 #: (~12 bytes a ray each) stay in the core's L2 cache while numpy builds them, large enough that the
@@ -72,7 +64,8 @@ class BakeResult:
     covered : (h, w) bool
         Texels that received surface samples.
     stderr : (h, w) float32
-        Standard error of each texel's mean, measure units.
+        Standard error of each texel's mean, measure units: its replicate standard error moderated
+        with its neighbours' (:func:`thickbake.pipeline.measures.moderated_stderr_map`).
     area : (h, w) float32
         World-space surface area each texel represents, scene units² (0 on border texels).
     rays : (h, w) int32
@@ -88,6 +81,9 @@ class BakeResult:
     unprojected : (h, w) bool or None
         Bakes from a source solid only: texels of the map's UV layout none of whose samples found a
         source point within the search distance or the cage (left to padding, never given a value).
+    stderr_dof : (h, w) float32 or None
+        Degrees of freedom of each texel's ``stderr`` (0 where there is none): a band at level p is
+        ±t_{(1+p)/2, dof}·stderr (:func:`thickbake.pipeline.measures.dof_coverage_factor`).
     """
 
     values: np.ndarray
@@ -100,6 +96,7 @@ class BakeResult:
     run: RunOptions = field(default_factory=RunOptions)
     key: MapKey | None = None
     unprojected: np.ndarray | None = None
+    stderr_dof: np.ndarray | None = None
 
     @property
     def world_per_local(self) -> float | None:
@@ -390,8 +387,14 @@ def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, eng
         raise ThickbakeError(f"no texel of the map ({_key_text(group.key)}) is covered by the UV layout",
                              path=asset.path, fix="check the UVs lie inside the 0–1 square or in UDIM tiles")
     timing = {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)}
+    own_dof = 0 if ctx.rays_per_sample < 2 else replicate_count(ctx.rays_per_sample) - 1
+    # adaptive maps: a texel borrows only from neighbours that traced as many rays
+    strata = ctx.rays if s.target_error is not None else None
+    ctx.stderr, stderr_dof, prior_dof = moderated_stderr_map(ctx.stderr, covered, own_dof, strata=strata)
     info = _bake_info(ctx, covered, totals, time.perf_counter() - start, timing)
     info["rays_retraced"] = int(sum(getattr(e, "rays_retraced", 0) for e in engines) - retraced_before)
+    info["stderr_dof"] = {"own": own_dof, "prior": None if math.isinf(prior_dof) else round(float(prior_dof), 3),
+                          "median": float(np.median(stderr_dof[covered]))}
     if fit:
         reach, info["reach_fit"] = fit_reach(ctx.values, covered, s.reach)
         s = s.replace(reach=reach)
@@ -399,7 +402,8 @@ def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, eng
     if mm_per_unit is not None:
         info["medium"] = medium_record(s, mm_per_unit)
     return BakeResult(values=ctx.values, covered=covered, stderr=ctx.stderr, area=ctx.area, rays=ctx.rays,
-                      settings=s, info=info, run=r, key=group.key, unprojected=ctx.unprojected)
+                      settings=s, info=info, run=r, key=group.key, unprojected=ctx.unprojected,
+                      stderr_dof=stderr_dof)
 
 
 def _with_options(settings: BakeSettings | None, run: RunOptions | None,
@@ -598,14 +602,21 @@ def _tile_side(chunk_rays: int, rays: int, supersample: int, width: int, height:
 
 
 def _ray_schedule(rays: int, adaptive: bool) -> list[tuple[int, int]]:
-    """Ray index ranges of the successive batches (one batch unless adaptive)."""
+    """Ray index ranges of the successive batches (one batch unless adaptive).
+
+    Adaptive batches end on the ladder 8, 12, 16, 24, 32, 48, 64, … (powers of two and 1.5 times
+    them, every one a multiple of R = 4), then on ``rays``: steps of about √2 instead of doubling, so
+    a sample that needs n rays to meet the target traces at most 1.5 n instead of up to 2 n.  A
+    batch always covers whole rounds of replicates, and a sample that reaches the cap has traced the
+    same rays as a fixed bake.
+    """
     if not adaptive or rays <= ADAPTIVE_FIRST_BATCH:
         return [(0, rays)]
     bounds = [0]
     n = ADAPTIVE_FIRST_BATCH
     while n < rays:
         bounds.append(n)
-        n *= 2
+        n += n // 2 if n & (n - 1) == 0 else n // 3
     bounds.append(rays)
     return list(zip(bounds[:-1], bounds[1:]))
 
@@ -711,11 +722,7 @@ def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np
     adaptive = s.target_error is not None
     replicates = moments.replicates
     if adaptive:
-        width = s.width
-        row, col = texel // width // ADAPTIVE_POOL_BLOCK, texel % width // ADAPTIVE_POOL_BLOCK
-        _, block = np.unique(row * (width // ADAPTIVE_POOL_BLOCK + 1) + col, return_inverse=True)
-        block_count = int(block.max()) + 1
-        block_size = np.bincount(block, minlength=block_count).astype(np.float64)
+        _, block = np.unique(block_labels(texel, s.width, ADAPTIVE_POOL_BLOCK), return_inverse=True)
     for ray_start, ray_stop in _ray_schedule(ctx.rays_per_sample, adaptive):
         k = ray_stop - ray_start
         per_call = max(1, min(ctx.run.chunk_rays, RAYS_PER_CALL) // k)
@@ -745,11 +752,28 @@ def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np
             tally["escapes"] += int(hit_any.size - np.count_nonzero(hit_any))
             tally["rays"] += hit.size
         if adaptive:
-            var = np.square(moments.stderr()[index])
-            pooled = np.bincount(block, weights=var, minlength=block_count)[block] / block_size[block]
-            limit = s.target_error * s.target_error
-            more = (((var[active] > limit) | (pooled[active] > limit))
-                    & (moments.count[index[active]] < ctx.rays_per_sample))
-            active = active[more]
+            active = active[_needs_more(moments, index[active], block[active], s.target_error, ctx.rays_per_sample)]
             if len(active) == 0:
                 break
+
+
+def _needs_more(moments: Moments, rows: np.ndarray, block: np.ndarray, target: float, cap: int) -> np.ndarray:
+    """(m,) bool: which of the still active samples (``rows`` of ``moments``) trace another batch.
+
+    All of them have traced the same rays so far.  A sample goes on while its moderated variance —
+    its own replicate variance shrunk towards the pooled variance of the other active samples of its
+    aligned block, with the prior degrees of freedom estimated from that block's own spread
+    (:func:`thickbake.pipeline.measures.moderated_variance`, Smyth 2004) — exceeds ``target``² and it
+    is below the cap.  An own variance on R − 1 = 3 degrees of freedom alone is noisy both ways: a
+    thin-wall sample whose few rays all missed the rare long grazing chords reports a tiny spread and
+    would stop with a large error, while a quarter of the samples whose true error meets the target
+    report one above it and trace on.  Neighbours see nearly the same integrand with independent
+    randomisations, so where they agree the decision rests on many more degrees of freedom; where they
+    differ (an island border, a thick part beside a thin one) the estimated prior weight falls and each
+    sample's own spread decides.
+    """
+    var = np.square(moments.stderr()[rows])
+    dof = moments.replicates - 1
+    _, group = np.unique(block, return_inverse=True)
+    moderated, _ = moderated_variance(var, dof, group, prior_dof(var, dof, group, per_group=True))
+    return (moderated > target * target) & (moments.count[rows] < cap)

@@ -105,12 +105,238 @@ def replicate_stderr(replicate_means: np.ndarray) -> np.ndarray:
     return np.sqrt(np.square(dev).sum(axis=1) / (r - 1) / r)
 
 
+#: Side, in texels, of the aligned blocks whose texels lend each other strength in the moderated
+#: variance (:func:`moderated_variance`): 16 neighbours within about two texels see nearly the same
+#: integrand, and blocks aligned to multiples of 4 never straddle the bake's tiles (aligned powers of
+#: two ≥ 16), so the map does not depend on the tiling.
+MODERATION_BLOCK = 4
+
+
+def _trigamma_inverse(y):
+    """x with ψ'(x) = y > 0 (float or array): Newton's method on 1/ψ', as in Smyth (2004), appendix."""
+    from scipy.special import polygamma
+
+    y = np.asarray(y, np.float64)
+    x = 0.5 + 1.0 / y
+    for _ in range(50):
+        tri = polygamma(1, x)
+        step = tri * (1.0 - tri / y) / polygamma(2, x)
+        x = x + step
+        if np.all(-step / x < 1e-8):
+            break
+    x = np.where(y > 1e7, 1.0 / np.sqrt(y), np.where(y < 1e-6, 1.0 / y, x))
+    return float(x) if x.ndim == 0 else x
+
+
+def prior_dof(variance: np.ndarray, dof: int, group: np.ndarray, *, per_group: bool = False):
+    """Prior degrees of freedom d₀ of the variances' local spread: Smyth's moment estimator.
+
+    Smyth (2004, §6.2) models each unit's true variance σᵢ² as drawn from a scaled inverse χ² prior
+    with d₀ degrees of freedom, and its estimate sᵢ² as σᵢ² χ²_d / d.  Then log sᵢ² has variance
+    ψ'(d/2) + ψ'(d₀/2), so the spread of the log variances beyond the sampling part ψ'(d/2) measures
+    how much the true variances differ.  Here the prior is local: each unit is compared with the mean
+    log variance of the *other* units of its group (leave-one-out, m others), whose own spread adds
+    1/m of the same variance, so ψ'(d₀/2) = mean[(eᵢ − ē₍ᵢ₎)² / (1 + 1/m)] − ψ'(d/2) with
+    eᵢ = log sᵢ² − ψ(d/2) + log(d/2).  No spread beyond sampling gives d₀ = inf (the neighbours
+    share one variance).  Zero variances (a sample whose rays all agree) carry no log and are left out.
+
+    Parameters
+    ----------
+    variance : (n,) float
+        Variance estimates sᵢ², each on ``dof`` degrees of freedom.
+    dof : int
+        d ≥ 1.
+    group : (n,) int
+        Group label of each unit (its aligned texel block).
+    per_group : bool
+        One d₀ per group (from that group's units alone) instead of one for all.
+
+    Returns
+    -------
+    float, or (g,) float64 indexed by group label when ``per_group``
+        d₀ ≥ 0, possibly inf.
+
+    References
+    ----------
+    G. K. Smyth, "Linear models and empirical Bayes methods for assessing differential expression in
+    microarray experiments", Statistical Applications in Genetics and Molecular Biology 3(1), art. 3, 2004.
+    """
+    from scipy.special import digamma, polygamma
+
+    v = np.asarray(variance, np.float64)
+    group = np.asarray(group)
+    labels = int(group.max()) + 1 if len(group) else 0
+    ok = v > 0
+    e = np.zeros(len(v))
+    e[ok] = np.log(v[ok]) - float(digamma(dof / 2)) + math.log(dof / 2)
+    sums = np.bincount(group, weights=e * ok, minlength=labels)
+    counts = np.bincount(group, weights=ok.astype(np.float64), minlength=labels)
+    others = counts[group] - 1
+    use = ok & (others >= 1)
+    m = np.maximum(others, 1)
+    loo = (sums[group] - e) / m
+    r2 = np.where(use, np.square(e - loo) / (1.0 + 1.0 / m), 0.0)
+    sampling = float(polygamma(1, dof / 2))
+    if per_group:
+        n_use = np.bincount(group, weights=use.astype(np.float64), minlength=labels)
+        excess = np.bincount(group, weights=r2, minlength=labels) / np.maximum(n_use, 1) - sampling
+        out = np.full(labels, np.inf)
+        spread = (n_use > 0) & (excess > 0)
+        out[spread] = 2.0 * _trigamma_inverse(excess[spread])
+        return out
+    if not use.any():
+        return math.inf
+    excess = float(r2[use].mean()) - sampling
+    return 2.0 * _trigamma_inverse(excess) if excess > 0 else math.inf
+
+
+def moderated_variance(variance: np.ndarray, dof: int, group: np.ndarray, d0=None):
+    """Empirical-Bayes moderated variances: each unit's own estimate shrunk towards its neighbours'.
+
+    s̃ᵢ² = (d₀ᵢ s₀ᵢ² + d sᵢ²) / (d₀ᵢ + d) on d₀ᵢ + d degrees of freedom (Smyth 2004, eq. 7 and §4),
+    with the local prior s₀ᵢ² the pooled variance (mean of sⱼ²) of the other units of i's group, and
+    d₀ᵢ = min(d₀, d·mᵢ): a prior pooled over m neighbours holds at most their d·m degrees of freedom.
+    When the neighbours share i's variance (d₀ = inf) s̃ᵢ² is the pooled variance of the whole group on
+    d·(m + 1) degrees of freedom, as in a one-way analysis of variance; a unit alone in its group keeps
+    its own estimate.  Texels of a thin wall whose few rays missed its rare long grazing chords report
+    both a short value and a small spread; their neighbours saw such chords, so the moderated variance
+    no longer shrinks together with the error, which is what keeps the stated bands honest there.
+
+    Parameters
+    ----------
+    variance : (n,) float
+        Own variance estimates on ``dof`` degrees of freedom.
+    dof : int
+    group : (n,) int
+        Group label (aligned texel block) of each unit.
+    d0 : float or (g,) float, optional
+        Prior degrees of freedom, one or one per group label; :func:`prior_dof` of these units if omitted.
+
+    Returns
+    -------
+    variance : (n,) float64
+    dof : (n,) float64
+        d₀ᵢ + d.
+    """
+    v = np.asarray(variance, np.float64)
+    group = np.asarray(group)
+    if len(v) == 0 or dof < 1:
+        return v.copy(), np.full(len(v), float(max(dof, 0)))
+    if d0 is None:
+        d0 = prior_dof(v, dof, group)
+    labels = int(group.max()) + 1
+    sums = np.bincount(group, weights=v, minlength=labels)
+    others = np.bincount(group, minlength=labels)[group] - 1
+    prior = (sums[group] - v) / np.maximum(others, 1)
+    d0_unit = np.asarray(d0, np.float64)[group] if np.ndim(d0) else np.full(len(v), float(d0))
+    d0_unit = np.minimum(d0_unit, dof * others.astype(np.float64))
+    return (d0_unit * prior + dof * v) / (d0_unit + dof), d0_unit + dof
+
+
+def map_prior_dof(variance: np.ndarray, covered: np.ndarray, dof: int, block: int = MODERATION_BLOCK,
+                  strata: np.ndarray | None = None) -> float:
+    """d₀ of a map's texel variances (:func:`prior_dof`), estimated on 2 × 2-texel pooled units.
+
+    The log-variance spread that Smyth's estimator reads assumes normal replicate means.  On a thin wall
+    the replicate means are skewed (a replicate of a few rays holds one rare long grazing chord or
+    none), so single-texel variances spread far more than ψ'(d/2) even where every texel has the same
+    true variance, and the estimator would mistake that for texels differing.  Pooling each aligned
+    2 × 2 group of texels first (4·d degrees of freedom, a sum of four replicate sets, closer to normal
+    by the central limit theorem) and comparing these pooled units within their block reads the
+    differences between neighbourhoods half a block apart instead; 2 × 2 groups with an uncovered
+    texel are left out.  Falls back to single texels when no 2 × 2 group is complete.
+
+    Parameters
+    ----------
+    variance : (h, w) float
+        Own variance estimate of each texel's mean on ``dof`` degrees of freedom (any value off ``covered``).
+    covered : (h, w) bool
+    dof : int
+    strata : (h, w) int, optional
+        Texels compare only with texels of the same stratum (2 × 2 groups must lie in one).
+
+    Returns
+    -------
+    float
+        d₀ ≥ 0, possibly inf.
+    """
+    h, w = covered.shape
+    hh, ww = h - h % 2, w - w % 2
+    cov = covered[:hh, :ww].reshape(hh // 2, 2, ww // 2, 2)
+    var = np.where(covered, variance, 0.0)[:hh, :ww].reshape(hh // 2, 2, ww // 2, 2)
+    full = cov.all(axis=(1, 3))
+    stratum = np.zeros(covered.shape, np.int64) if strata is None else np.asarray(strata, np.int64)
+    st = stratum[:hh, :ww].reshape(hh // 2, 2, ww // 2, 2)
+    full &= (st == st[:, :1, :, :1]).all(axis=(1, 3))
+    if not full.any():
+        index = np.flatnonzero(covered.ravel())
+        group = _stratified(block_labels(index, w, block), stratum.ravel()[index])
+        return prior_dof(np.asarray(variance, np.float64).ravel()[index], dof, group)
+    pooled = var.sum(axis=(1, 3))[full] / 4.0
+    rows, cols = np.nonzero(full)
+    group = _stratified((rows * 2 // block) * (-(-w // block)) + cols * 2 // block, st[:, 0, :, 0][full])
+    return prior_dof(pooled, 4 * dof, group)
+
+
+def _stratified(block: np.ndarray, stratum: np.ndarray) -> np.ndarray:
+    """(n,) int64 labels 0 … g − 1 of the distinct (block, stratum) pairs."""
+    return np.unique(np.stack([block, stratum], axis=1), axis=0, return_inverse=True)[1].reshape(-1)
+
+
+def moderated_stderr_map(stderr: np.ndarray, covered: np.ndarray, dof: int, block: int = MODERATION_BLOCK,
+                         strata: np.ndarray | None = None):
+    """A map's standard errors moderated over aligned texel blocks (:func:`moderated_variance`).
+
+    Parameters
+    ----------
+    stderr : (h, w) float
+        Each texel's own replicate standard error (:func:`replicate_stderr`), measure units.
+    covered : (h, w) bool
+    dof : int
+        Degrees of freedom of the own estimates, R − 1 (0: no error estimate, returned unchanged).
+    strata : (h, w) int, optional
+        A texel borrows only from texels of its block in the same stratum (an adaptive bake passes
+        the rays per texel: a neighbour that stopped earlier has a larger variance).
+
+    Returns
+    -------
+    stderr : (h, w) float32
+        Moderated standard errors (0 off ``covered``).
+    dof : (h, w) float32
+        Degrees of freedom of each (d₀ᵢ + d; 0 off ``covered``).
+    prior_dof : float
+        The map's d₀ (:func:`map_prior_dof`), possibly inf; 0 when ``dof`` < 1.
+    """
+    out = np.zeros(covered.shape, np.float32)
+    dof_map = np.zeros(covered.shape, np.float32)
+    if dof < 1 or not covered.any():
+        out[covered] = np.asarray(stderr)[covered]
+        return out, dof_map, 0.0
+    variance = np.square(np.asarray(stderr, np.float64))
+    d0 = map_prior_dof(variance, covered, dof, block, strata)
+    index = np.flatnonzero(covered.ravel())
+    stratum = np.zeros(len(index), np.int64) if strata is None else np.asarray(strata, np.int64).ravel()[index]
+    group = _stratified(block_labels(index, covered.shape[1], block), stratum)
+    moderated, unit_dof = moderated_variance(variance.ravel()[index], dof, group, d0)
+    out.ravel()[index] = np.sqrt(moderated)
+    dof_map.ravel()[index] = unit_dof
+    return out, dof_map, d0
+
+
+def block_labels(texel: np.ndarray, width: int, block: int = MODERATION_BLOCK) -> np.ndarray:
+    """(n,) int64 label of the aligned ``block`` × ``block`` texel block of each row-major texel index."""
+    texel = np.asarray(texel, np.int64)
+    per_row = -(-int(width) // block)
+    return (texel // width // block) * per_row + (texel % width) // block
+
+
 def coverage_factor(level: float, replicates: int) -> float:
     """k such that ±k·σ̂ covers the true value with probability ``level`` (two-sided).
 
     σ̂ is :func:`replicate_stderr` of R replicates; with normally distributed replicate means,
     (x̄ − μ)/σ̂ follows Student's t with R − 1 degrees of freedom (Student 1908), so
-    k = t_{(1+level)/2, R−1}.  Returns inf for R < 2.
+    k = t_{(1+level)/2, R−1}.  Returns inf for R < 2.  For a moderated σ̃ use
+    :func:`dof_coverage_factor` with its degrees of freedom.
 
     Examples
     --------
@@ -119,9 +345,26 @@ def coverage_factor(level: float, replicates: int) -> float:
     """
     if replicates < 2:
         return math.inf
+    return float(dof_coverage_factor(level, replicates - 1))
+
+
+def dof_coverage_factor(level: float, dof):
+    """k = t_{(1+level)/2, dof}: the two-sided ``level`` band of a standard error on ``dof`` degrees of
+    freedom (float or array; inf dof gives the normal quantile; 0 dof gives inf).
+
+    For the moderated σ̃ of :func:`moderated_variance`, (x̄ − μ)/σ̃ follows Student's t on d₀ + d
+    degrees of freedom (Smyth 2004, §4).
+
+    Examples
+    --------
+    >>> round(float(dof_coverage_factor(0.95, 48.0)), 3)
+    2.011
+    """
     from scipy import stats
 
-    return float(stats.t.ppf(0.5 + 0.5 * float(level), replicates - 1))
+    d = np.asarray(dof, np.float64)
+    k = np.where(d > 0, stats.t.ppf(0.5 + 0.5 * float(level), np.maximum(d, 1e-9)), np.inf)
+    return float(k) if k.ndim == 0 else k
 
 
 def texel_reduce(texel: np.ndarray, sample_replicates: np.ndarray, sample_area: np.ndarray,
