@@ -233,6 +233,15 @@ def moderated_variance(variance: np.ndarray, dof: int, group: np.ndarray, d0=Non
     return (d0_unit * prior + dof * v) / (d0_unit + dof), d0_unit + dof
 
 
+def _blocks(a: np.ndarray, block: int) -> np.ndarray:
+    """(H/b, b, W/b, b) view of an (h, w) array zero-padded to multiples of ``block``."""
+    h, w = a.shape
+    pad = ((0, -h % block), (0, -w % block))
+    if any(p for _, p in pad):
+        a = np.pad(a, pad)
+    return a.reshape(a.shape[0] // block, block, a.shape[1] // block, block)
+
+
 def map_prior_dof(variance: np.ndarray, covered: np.ndarray, dof: int, block: int = MODERATION_BLOCK,
                   strata: np.ndarray | None = None) -> float:
     """d₀ of a map's texel variances (:func:`prior_dof`), estimated on 2 × 2-texel pooled units.
@@ -244,16 +253,16 @@ def map_prior_dof(variance: np.ndarray, covered: np.ndarray, dof: int, block: in
     2 × 2 group of texels first (4·d degrees of freedom, a sum of four replicate sets, closer to normal
     by the central limit theorem) and comparing these pooled units within their block reads the
     differences between neighbourhoods half a block apart instead; 2 × 2 groups with an uncovered
-    texel are left out.  Falls back to single texels when no 2 × 2 group is complete.
+    texel (or two strata) are left out.  Falls back to single texels when no 2 × 2 group is complete.
 
     Parameters
     ----------
     variance : (h, w) float
-        Own variance estimate of each texel's mean on ``dof`` degrees of freedom (any value off ``covered``).
+        Own variance estimate of each texel's mean on ``dof`` degrees of freedom (0 off ``covered``).
     covered : (h, w) bool
     dof : int
     strata : (h, w) int, optional
-        Texels compare only with texels of the same stratum (2 × 2 groups must lie in one).
+        Texels compare only with texels of the same stratum.
 
     Returns
     -------
@@ -261,31 +270,38 @@ def map_prior_dof(variance: np.ndarray, covered: np.ndarray, dof: int, block: in
         d₀ ≥ 0, possibly inf.
     """
     h, w = covered.shape
-    hh, ww = h - h % 2, w - w % 2
-    cov = covered[:hh, :ww].reshape(hh // 2, 2, ww // 2, 2)
-    var = np.where(covered, variance, 0.0)[:hh, :ww].reshape(hh // 2, 2, ww // 2, 2)
-    full = cov.all(axis=(1, 3))
-    stratum = np.zeros(covered.shape, np.int64) if strata is None else np.asarray(strata, np.int64)
-    st = stratum[:hh, :ww].reshape(hh // 2, 2, ww // 2, 2)
-    full &= (st == st[:, :1, :, :1]).all(axis=(1, 3))
+    per_row = -(-w // block)
+    stratum = np.zeros(covered.shape, np.int32) if strata is None else np.asarray(strata)
+    cov = _blocks(covered, 2)
+    st = _blocks(stratum, 2)
+    full = cov.all(axis=(1, 3)) & (st == st[:, :1, :, :1]).all(axis=(1, 3))
     if not full.any():
         index = np.flatnonzero(covered.ravel())
         group = _stratified(block_labels(index, w, block), stratum.ravel()[index])
         return prior_dof(np.asarray(variance, np.float64).ravel()[index], dof, group)
-    pooled = var.sum(axis=(1, 3))[full] / 4.0
+    pooled = _blocks(variance, 2).sum(axis=(1, 3), dtype=np.float64)[full] / 4.0
     rows, cols = np.nonzero(full)
-    group = _stratified((rows * 2 // block) * (-(-w // block)) + cols * 2 // block, st[:, 0, :, 0][full])
+    group = _stratified((rows * 2 // block) * per_row + cols * 2 // block, st[:, 0, :, 0][full])
     return prior_dof(pooled, 4 * dof, group)
 
 
 def _stratified(block: np.ndarray, stratum: np.ndarray) -> np.ndarray:
-    """(n,) int64 labels 0 … g − 1 of the distinct (block, stratum) pairs."""
-    return np.unique(np.stack([block, stratum], axis=1), axis=0, return_inverse=True)[1].reshape(-1)
+    """(n,) int64 group labels of the distinct (block, stratum) pairs (the block labels themselves when
+    there is one stratum)."""
+    stratum = np.asarray(stratum)
+    if len(stratum) == 0 or stratum.min() == stratum.max():
+        return np.asarray(block, np.int64)
+    _, codes = np.unique(stratum, return_inverse=True)
+    key = np.asarray(block, np.int64) * (int(codes.max(initial=0)) + 1) + codes.reshape(-1)
+    return np.unique(key, return_inverse=True)[1].reshape(-1)
 
 
 def moderated_stderr_map(stderr: np.ndarray, covered: np.ndarray, dof: int, block: int = MODERATION_BLOCK,
                          strata: np.ndarray | None = None):
     """A map's standard errors moderated over aligned texel blocks (:func:`moderated_variance`).
+
+    Computed on the grid (block sums broadcast back to their texels, float32 per texel), so a 4096²
+    map needs a few map-sized float32 arrays; one pass per stratum.
 
     Parameters
     ----------
@@ -307,20 +323,33 @@ def moderated_stderr_map(stderr: np.ndarray, covered: np.ndarray, dof: int, bloc
     prior_dof : float
         The map's d₀ (:func:`map_prior_dof`), possibly inf; 0 when ``dof`` < 1.
     """
-    out = np.zeros(covered.shape, np.float32)
-    dof_map = np.zeros(covered.shape, np.float32)
+    h, w = covered.shape
     if dof < 1 or not covered.any():
+        out = np.zeros((h, w), np.float32)
         out[covered] = np.asarray(stderr)[covered]
-        return out, dof_map, 0.0
-    variance = np.square(np.asarray(stderr, np.float64))
+        return out, np.zeros((h, w), np.float32), 0.0
+    variance = np.square(np.where(covered, stderr, 0).astype(np.float32))
     d0 = map_prior_dof(variance, covered, dof, block, strata)
-    index = np.flatnonzero(covered.ravel())
-    stratum = np.zeros(len(index), np.int64) if strata is None else np.asarray(strata, np.int64).ravel()[index]
-    group = _stratified(block_labels(index, covered.shape[1], block), stratum)
-    moderated, unit_dof = moderated_variance(variance.ravel()[index], dof, group, d0)
-    out.ravel()[index] = np.sqrt(moderated)
-    dof_map.ravel()[index] = unit_dof
-    return out, dof_map, d0
+    var_b = _blocks(variance, block)
+    out_b = np.zeros(var_b.shape, np.float32)
+    dof_b = np.zeros(var_b.shape, np.float32)
+    for level in [None] if strata is None else np.unique(np.asarray(strata)[covered]):
+        mine_b = _blocks(covered if level is None else covered & (strata == level), block)
+        own = np.where(mine_b, var_b, np.float32(0))
+        sums = own.sum(axis=(1, 3), dtype=np.float64).astype(np.float32)[:, None, :, None]
+        others = np.maximum(mine_b.sum(axis=(1, 3), dtype=np.float32)[:, None, :, None] - 1, 0)
+        weight = np.minimum(np.float32(min(d0, 1e30)), dof * others)  # d₀ᵢ, one per block
+        prior = sums - own
+        prior /= np.maximum(others, 1)
+        prior *= weight
+        own *= dof
+        prior += own
+        prior /= weight + dof                                          # Smyth (2004), eq. 7
+        np.sqrt(prior, out=prior)
+        np.copyto(out_b, prior, where=mine_b)
+        np.copyto(dof_b, weight + dof, where=mine_b, casting="unsafe")
+    rows = out_b.shape[0] * block
+    return (out_b.reshape(rows, -1)[:h, :w].copy(), dof_b.reshape(rows, -1)[:h, :w].copy(), d0)
 
 
 def block_labels(texel: np.ndarray, width: int, block: int = MODERATION_BLOCK) -> np.ndarray:
