@@ -17,6 +17,14 @@ stated at a confidence level uses the Student-t quantile :func:`coverage_factor`
 ±3.18 σ̂ for 95%, ±1.20 σ̂ for 68.3%), not the normal 1.96 and 1 — that is what makes the bands
 calibrated (scripts/calibration.py measures it).  With one ray (``--cone 0``) R = 1 and the standard
 error is 0 (the measurement is deterministic).
+
+Three degrees of freedom are few, and on a thin wall the replicate means are skewed: a texel whose
+replicates all missed the rare long grazing chords reports a short value *and* a small spread.  The
+map's standard error is therefore moderated with its aligned 4×4-texel block, the empirical-Bayes
+moderated variance of Smyth (2004): the own variance shrunk towards the pooled variance of the block's
+other texels, with prior degrees of freedom d₀ estimated from how much neighbouring variances differ
+(:func:`prior_dof`, :func:`moderated_stderr_map`); bands then use Student-t on d₀ᵢ + R − 1 degrees of
+freedom (:func:`dof_coverage_factor`).  Adaptive sampling stops on the same moderated variance.
 """
 
 from __future__ import annotations
