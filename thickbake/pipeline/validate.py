@@ -345,111 +345,152 @@ def check_gltf_document(doc: dict, where, folder, bin_length: int | None) -> Non
     """Check what trimesh does not: buffers exist with the bytes they claim, buffer views and accessors
     lie inside them, indices are valid, and every external file is inside ``folder``.
 
-    ``bin_length`` is the GLB binary chunk's length (None for a ``.gltf``).
+    ``bin_length`` is the GLB binary chunk's length (None for a ``.gltf``).  Raises
+    :class:`ThickbakeError` naming the first offending element (``accessors[3]``, ...).
     """
-    def fail(element: str, message: str, fix: str = _REEXPORT):
-        raise ThickbakeError(f"{element}: {message}", path=where, fix=fix)
+    check = _GltfDocumentCheck(doc, where, folder)
+    check.asset_version()
+    sizes = check.buffers(bin_length)
+    views = check.buffer_views(sizes)
+    counts = check.accessors(views)
+    check.triangle_count(counts)
+    check.images()
 
-    def items(key):
-        value = doc.get(key, [])
+
+class _GltfDocumentCheck:
+    """The steps of :func:`check_gltf_document`, in the order glTF elements refer to each other
+    (buffers ← bufferViews ← accessors ← meshes), each returning what the next one needs."""
+
+    def __init__(self, doc: dict, where, folder):
+        self.doc, self.where, self.folder = doc, where, folder
+
+    def fail(self, element: str, message: str, fix: str = _REEXPORT):
+        raise ThickbakeError(f"{element}: {message}", path=self.where, fix=fix)
+
+    def items(self, key) -> list:
+        value = self.doc.get(key, [])
         if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
-            fail(key, "is not a list of objects")
+            self.fail(key, "is not a list of objects")
         return value
 
-    def whole(value, element, name, low=0):
+    def whole(self, value, element, name, low=0) -> int:
         if isinstance(value, bool) or not isinstance(value, int) or value < low:
-            fail(element, f"{name} {value!r} is not a whole number ≥ {low}")
+            self.fail(element, f"{name} {value!r} is not a whole number ≥ {low}")
         return value
 
-    asset = doc.get("asset")
-    if not isinstance(asset, dict) or not str(asset.get("version", "")).startswith("2"):
-        fail("asset", "no glTF 2.0 'asset.version'", "export as glTF 2.0")
-    buffers = items("buffers")
-    sizes = []
-    for i, buffer in enumerate(buffers):
-        element = f"buffers[{i}]"
-        length = whole(buffer.get("byteLength"), element, "byteLength", 1)
-        uri = buffer.get("uri")
+    def asset_version(self) -> None:
+        asset = self.doc.get("asset")
+        if not isinstance(asset, dict) or not str(asset.get("version", "")).startswith("2"):
+            self.fail("asset", "no glTF 2.0 'asset.version'", "export as glTF 2.0")
+
+    def buffers(self, bin_length: int | None) -> list[int]:
+        """byteLength of every buffer, after checking that its bytes are there."""
+        sizes = []
+        for i, buffer in enumerate(self.items("buffers")):
+            element = f"buffers[{i}]"
+            length = self.whole(buffer.get("byteLength"), element, "byteLength", 1)
+            available = self._buffer_bytes(element, buffer.get("uri"), i, bin_length)
+            if available < length:
+                self.fail(element, f"byteLength is {length:,} but only {available:,} bytes are there")
+            sizes.append(length)
+        return sizes
+
+    def _buffer_bytes(self, element: str, uri, index: int, bin_length: int | None) -> int:
+        """Bytes available to a buffer: the GLB chunk, a base64 data URI, or a file inside the folder."""
         if uri is None:
-            if bin_length is None or i != 0:
-                fail(element, "has no uri and there is no GLB binary chunk")
-            available = bin_length
-        elif not isinstance(uri, str):
-            fail(element, "uri is not a string")
-        elif uri.startswith("data:"):
-            comma = uri.find(",")
-            if comma < 0 or ";base64" not in uri[:comma]:
-                fail(element, "data URI is not base64")
-            try:
-                available = len(base64.b64decode(uri[comma + 1:], validate=True))
-            except (binascii.Error, ValueError):
-                fail(element, "data URI holds invalid base64")
-        else:
-            path = confined_path(folder, uri, where)
-            available = check_regular_file(path, what=f"buffer {uri!r} of the asset").st_size
-        if available < length:
-            fail(element, f"byteLength is {length:,} but only {available:,} bytes are there")
-        sizes.append(length)
-    views = items("bufferViews")
-    for i, view in enumerate(views):
-        element = f"bufferViews[{i}]"
-        b = whole(view.get("buffer"), element, "buffer")
-        if b >= len(sizes):
-            fail(element, f"refers to buffer {b}, but there are {len(sizes)}")
-        offset = whole(view.get("byteOffset", 0), element, "byteOffset")
-        length = whole(view.get("byteLength"), element, "byteLength", 1)
-        if offset + length > sizes[b]:
-            fail(element, f"bytes {offset:,}..{offset + length:,} lie beyond buffer {b} ({sizes[b]:,} bytes)")
-        if "byteStride" in view:
-            whole(view["byteStride"], element, "byteStride", 4)
-    accessors = items("accessors")
-    counts = []
-    for i, acc in enumerate(accessors):
-        element = f"accessors[{i}]"
-        count = whole(acc.get("count"), element, "count", 1)
-        if acc.get("componentType") not in _COMPONENT_BYTES:
-            fail(element, f"componentType {acc.get('componentType')!r} is not a glTF component type")
-        if acc.get("type") not in _TYPE_COMPONENTS:
-            fail(element, f"type {acc.get('type')!r} is not a glTF accessor type")
-        if count > MAX_VERTICES * 3:
-            fail(element, f"count {count:,} is over the limit", "decimate the mesh or split it into several assets")
-        counts.append(count)
-        if "bufferView" not in acc:
-            continue  # all zeros (or sparse): nothing to read
-        v = whole(acc.get("bufferView"), element, "bufferView")
+            if bin_length is None or index != 0:
+                self.fail(element, "has no uri and there is no GLB binary chunk")
+            return bin_length
+        if not isinstance(uri, str):
+            self.fail(element, "uri is not a string")
+        if not uri.startswith("data:"):
+            path = confined_path(self.folder, uri, self.where)
+            return check_regular_file(path, what=f"buffer {uri!r} of the asset").st_size
+        comma = uri.find(",")
+        if comma < 0 or ";base64" not in uri[:comma]:
+            self.fail(element, "data URI is not base64")
+        try:
+            return len(base64.b64decode(uri[comma + 1:], validate=True))
+        except (binascii.Error, ValueError):
+            self.fail(element, "data URI holds invalid base64")
+
+    def buffer_views(self, sizes: list[int]) -> list[dict]:
+        views = self.items("bufferViews")
+        for i, view in enumerate(views):
+            element = f"bufferViews[{i}]"
+            b = self.whole(view.get("buffer"), element, "buffer")
+            if b >= len(sizes):
+                self.fail(element, f"refers to buffer {b}, but there are {len(sizes)}")
+            offset = self.whole(view.get("byteOffset", 0), element, "byteOffset")
+            length = self.whole(view.get("byteLength"), element, "byteLength", 1)
+            if offset + length > sizes[b]:
+                self.fail(element, f"bytes {offset:,}..{offset + length:,} lie beyond buffer {b} ({sizes[b]:,} bytes)")
+            if "byteStride" in view:
+                self.whole(view["byteStride"], element, "byteStride", 4)
+        return views
+
+    def accessors(self, views: list[dict]) -> list[int]:
+        """Element count of every accessor, after checking that its elements lie inside its buffer view."""
+        counts = []
+        for i, acc in enumerate(self.items("accessors")):
+            element = f"accessors[{i}]"
+            count = self.whole(acc.get("count"), element, "count", 1)
+            if acc.get("componentType") not in _COMPONENT_BYTES:
+                self.fail(element, f"componentType {acc.get('componentType')!r} is not a glTF component type")
+            if acc.get("type") not in _TYPE_COMPONENTS:
+                self.fail(element, f"type {acc.get('type')!r} is not a glTF accessor type")
+            if count > MAX_VERTICES * 3:
+                self.fail(element, f"count {count:,} is over the limit", "decimate the mesh or split it into several assets")
+            counts.append(count)
+            if "bufferView" in acc:  # without one: all zeros (or sparse), nothing to read
+                self._accessor_extent(element, acc, count, views)
+        return counts
+
+    def _accessor_extent(self, element: str, acc: dict, count: int, views: list[dict]) -> None:
+        v = self.whole(acc.get("bufferView"), element, "bufferView")
         if v >= len(views):
-            fail(element, f"refers to bufferView {v}, but there are {len(views)}")
+            self.fail(element, f"refers to bufferView {v}, but there are {len(views)}")
         element_bytes = _COMPONENT_BYTES[acc["componentType"]] * _TYPE_COMPONENTS[acc["type"]]
         stride = views[v].get("byteStride") or element_bytes
-        offset = whole(acc.get("byteOffset", 0), element, "byteOffset")
+        offset = self.whole(acc.get("byteOffset", 0), element, "byteOffset")
         end = offset + stride * (count - 1) + element_bytes
         if end > views[v]["byteLength"]:
-            fail(element, f"{count:,} elements from byte {offset:,} need {end:,} bytes, but bufferView {v} has "
-                          f"{views[v]['byteLength']:,}")
-    triangles = 0
-    for m, mesh in enumerate(items("meshes")):
-        primitives = mesh.get("primitives", [])
-        if not isinstance(primitives, list):
-            fail(f"meshes[{m}]", "primitives is not a list")
-        for p, prim in enumerate(primitives):
-            element = f"meshes[{m}].primitives[{p}]"
-            if not isinstance(prim, dict) or not isinstance(prim.get("attributes", {}), dict):
-                fail(element, "is not a primitive object")
-            refs = list(prim.get("attributes", {}).values()) + ([prim["indices"]] if "indices" in prim else [])
-            for ref in refs:
-                whole(ref, element, "accessor")
-                if ref >= len(accessors):
-                    fail(element, f"refers to accessor {ref}, but there are {len(accessors)}")
-            if "indices" in prim:
-                triangles += counts[prim["indices"]] // 3
-            elif "POSITION" in prim.get("attributes", {}):
-                triangles += counts[prim["attributes"]["POSITION"]] // 3
-    if triangles > MAX_FACES:
-        fail("meshes", f"{triangles:,} triangles, over the limit of {MAX_FACES:,}",
-             "decimate the mesh or split it into several assets")
-    for i, image in enumerate(items("images")):
-        uri = image.get("uri")
-        if isinstance(uri, str) and not uri.startswith("data:"):
-            confined_path(folder, uri, where)
-        elif uri is not None and not isinstance(uri, str):
-            fail(f"images[{i}]", "uri is not a string")
+            self.fail(element, f"{count:,} elements from byte {offset:,} need {end:,} bytes, but bufferView {v} has "
+                               f"{views[v]['byteLength']:,}")
+
+    def triangle_count(self, counts: list[int]) -> int:
+        """Triangles over all primitives (their accessor references checked), within :data:`MAX_FACES`."""
+        triangles = 0
+        for m, mesh in enumerate(self.items("meshes")):
+            primitives = mesh.get("primitives", [])
+            if not isinstance(primitives, list):
+                self.fail(f"meshes[{m}]", "primitives is not a list")
+            for p, prim in enumerate(primitives):
+                triangles += self._primitive_triangles(f"meshes[{m}].primitives[{p}]", prim, counts)
+        if triangles > MAX_FACES:
+            self.fail("meshes", f"{triangles:,} triangles, over the limit of {MAX_FACES:,}",
+                      "decimate the mesh or split it into several assets")
+        return triangles
+
+    def _primitive_triangles(self, element: str, prim, counts: list[int]) -> int:
+        if not isinstance(prim, dict) or not isinstance(prim.get("attributes", {}), dict):
+            self.fail(element, "is not a primitive object")
+        refs = list(prim.get("attributes", {}).values()) + ([prim["indices"]] if "indices" in prim else [])
+        for ref in refs:
+            self.whole(ref, element, "accessor")
+            if ref >= len(counts):
+                self.fail(element, f"refers to accessor {ref}, but there are {len(counts)}")
+        if "indices" in prim:
+            return counts[prim["indices"]] // 3
+        if "POSITION" in prim.get("attributes", {}):
+            return counts[prim["attributes"]["POSITION"]] // 3
+        return 0
+
+    def images(self) -> None:
+        """Every external image file lies inside the folder."""
+        for i, image in enumerate(self.items("images")):
+            uri = image.get("uri")
+            if isinstance(uri, str) and not uri.startswith("data:"):
+                confined_path(self.folder, uri, self.where)
+            elif uri is not None and not isinstance(uri, str):
+                self.fail(f"images[{i}]", "uri is not a string")
