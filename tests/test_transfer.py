@@ -21,7 +21,7 @@ import thickbake
 from thickbake.checks import shapes
 from thickbake.errors import ThickbakeError
 from thickbake.pipeline.load import load_asset
-from thickbake.pipeline.transfer import SEARCH_DIAGONAL_FRACTION
+from thickbake.constants import SEARCH_DIAGONAL_FRACTION
 
 R = 1.0
 SIZE = 128

@@ -36,3 +36,36 @@ DEGENERATE_NORMAL_LENGTH = 1e-12
 #: A reach counts as covering the bounding-box diagonal down to this relative shortfall: a reach
 #: typed from a printed diagonal loses ~1e-16 relative, far inside it.
 REACH_DIAGONAL_RELATIVE_SLACK = 1e-9
+#: Triangles whose area is below (this × diagonal)² count as degenerate (load): float64 cross products
+#: of unit-scale corners resolve areas down to ~1e-16, so 1e-9 of the diagonal squared (1e-18) is well
+#: inside round-off of a zero area and far below any real triangle.
+DEGENERATE_AREA_FRACTION = 1e-9
+#: A mesh whose extent is below this many float64 ulps of its largest coordinate has lost its shape
+#: to rounding before thickbake sees it (load): 2²⁰ ulps leave ~6 significant digits of the shape.
+MIN_EXTENT_ULPS = 2.0**20
+#: Smallest and largest bounding-box diagonal, scene units, the load accepts: float32 handles
+#: magnitudes from ~1.2e-38 to ~3.4e38, and squared distances inside the ray engine must stay finite
+#: and normal, so the extent must lie well inside the square root of that range.
+FLOAT32_EXTENT_RANGE = (1e-15, 1e15)
+#: Relative spread below which scales count as one uniform scale (unitless): the singular values of
+#: a node transform (glTF reader), the node scales of the faces one map covers (map groups) and of a
+#: material's instances (glTF write-back).  float32 node matrices composed over a few levels carry
+#: ~1e-7 relative error each, and a 1e-5 difference changes a thickness factor by less than half a
+#: 16-bit code step (1.5e-5).
+UNIFORM_SCALE_TOLERANCE = 1e-5
+#: Default search distance of a bake measured in a source solid (pipeline.transfer), as a fraction
+#: of the *target's* bounding-box diagonal.  It must exceed the gap between the target and the
+#: source, whose typical size is the facet sag of the low-polygon target, R·(1 − cos(π/n)) for n
+#: segments around a round part of radius R: 3.9% of the diagonal (2√3·R of a sphere's box) for a
+#: six-segment sphere, 0.6% for sixteen segments.  It must also stay below half the thickness of the
+#: thinnest part, or a search could pass through the part and match its far side (which the facing
+#: test then rejects, leaving the sample unprojected instead of wrong).  5% covers even six-segment
+#: round parts.  Judgement, no published source.
+SEARCH_DIAGONAL_FRACTION = 0.05
+#: float32 round-off of ray origins, directions and hit distances, in ulps of the bounding-box
+#: diagonal (checks.error_budget): a handful of roundings of at most half an ulp each, so 8 ulps of
+#: 2⁻²⁴ relative each bound them.
+FLOAT32_ULPS = 8
+#: One float32 ulp relative to the value (2⁻²⁴: half the spacing at 1, the unit round-off of a
+#: 24-bit significand).
+FLOAT32_EPS = 2.0 ** -24

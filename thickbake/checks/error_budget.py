@@ -63,6 +63,7 @@ import math
 import numpy as np
 
 from thickbake.checks.shapes import _g1, _g2  # the same cancellation-free forms as the cone closed forms
+from thickbake.constants import FLOAT32_EPS, FLOAT32_ULPS
 from thickbake.lobes import lobe_named
 from thickbake.measures import Measure, measure_named
 
@@ -80,10 +81,6 @@ CALIBRATION_SLACK = 0.03
 CAUCHY_K = 4.0
 #: Budget for the Cauchy consistency check: 1% of 4V/S (the project's acceptance criterion, not a published figure).
 CAUCHY_BUDGET = 0.01
-#: float32 round-off of ray origins, directions and hit distances: a handful of roundings of at most
-#: half an ulp each; 8 ulps (2⁻²⁴ relative each) of the scene's bounding-box diagonal bounds them.
-FLOAT32_ULPS = 8
-FLOAT32_EPS = 2.0 ** -24
 #: Cone half-angles (radians) at or below this are treated as a single ray along the normal: the closed
 #: forms divide by sin²α and 1 − cos α, which lose all precision there.
 SPHERE_CONE_ZERO_RAD = 1e-7
@@ -257,7 +254,7 @@ MEAN_CHORD_LIPSCHITZ = 3.0
 
 
 __all__ = [
-    "FAMILY_ALPHA", "CHEBYSHEV_K95", "LEVEL_95", "CALIBRATION_SLACK", "CAUCHY_K", "CAUCHY_BUDGET", "FLOAT32_ULPS", "MEAN_CHORD_LIPSCHITZ",
+    "FAMILY_ALPHA", "CHEBYSHEV_K95", "LEVEL_95", "CALIBRATION_SLACK", "CAUCHY_K", "CAUCHY_BUDGET", "MEAN_CHORD_LIPSCHITZ",
     "float32_term", "half_code_step", "bonferroni_k", "measure_value", "measure_modulus", "measure_lipschitz",
     "sphere_cone_expected", "sphere_ray_error", "sphere_systematic_bound", "cauchy_bias_bound",
 ]

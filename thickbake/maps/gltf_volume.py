@@ -44,6 +44,7 @@ from urllib.parse import quote, unquote
 
 import numpy as np
 
+from thickbake.constants import UNIFORM_SCALE_TOLERANCE
 from thickbake.errors import ThickbakeError
 
 GLB_MAGIC = 0x46546C67  # "glTF"
@@ -53,10 +54,6 @@ GLTF_SUFFIXES = (".glb", ".gltf")
 EXTENSION = "KHR_materials_volume"
 TRANSMISSION = "KHR_materials_transmission"
 DIFFUSE_TRANSMISSION = "KHR_materials_diffuse_transmission"
-#: Relative spread of a node's singular values (or of the scales of a material's instances) below
-#: which a scale counts as uniform/equal: float32 node matrices carry ~1e-7 relative error, and a
-#: 1e-5 difference changes a thickness factor by less than half a 16-bit code step (1.5e-5).
-SCALE_TOLERANCE = 1e-5
 #: glTF sampler: LINEAR magnification, LINEAR_MIPMAP_LINEAR minification (wrap stays REPEAT).
 SAMPLER = {"magFilter": 9729, "minFilter": 9987}
 
@@ -247,7 +244,7 @@ def mesh_instances(doc: dict) -> list[tuple[int, int, np.ndarray]]:
 def uniform_scale(world: np.ndarray) -> float | None:
     """The scale of a similarity transform's 3x3 part, or None when the scale is not uniform."""
     sv = np.linalg.svd(world[:3, :3], compute_uv=False)
-    if sv.min() <= 0 or sv.max() / sv.min() - 1 > SCALE_TOLERANCE:
+    if sv.min() <= 0 or sv.max() / sv.min() - 1 > UNIFORM_SCALE_TOLERANCE:
         return None
     return float(sv.mean())
 
@@ -296,7 +293,7 @@ def plan_volume(path: str | os.PathLike, uv_set: int = 0, materials=None) -> Vol
         if not found:
             skipped[material] = "no node of the scene draws it"
             continue
-        if max(found) / min(found) - 1 > SCALE_TOLERANCE:
+        if max(found) / min(found) - 1 > UNIFORM_SCALE_TOLERANCE:
             raise ThickbakeError(
                 f"material {_material_label(doc, material)} is drawn at different scales "
                 f"({min(found):g} to {max(found):g}), so no single thicknessFactor in the mesh's units fits it",

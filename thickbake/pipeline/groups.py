@@ -18,13 +18,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from thickbake.constants import UNIFORM_SCALE_TOLERANCE
 from thickbake.errors import ThickbakeError
 
 #: UDIM tiles per row of the layout, and the number of the tile at (0, 0) (MaterialX v1.39).
 UDIM_COLUMNS = 10
 UDIM_FIRST = 1001
-#: Node scales within this relative spread count as one (float32 matrices, see readers).
-SCALE_TOLERANCE = 1e-5
 
 
 @dataclass(frozen=True)
@@ -148,7 +147,7 @@ def local_units(face_scale: np.ndarray | None, faces: np.ndarray) -> dict:
     if uneven.any():
         out["why"] = (f"{int(uneven.sum())} faces sit under a node that scales unevenly, so no single factor turns "
                       "world thickness into the mesh's units")
-    elif len(found) > 1 and found.max() / found.min() - 1 > SCALE_TOLERANCE:
+    elif len(found) > 1 and found.max() / found.min() - 1 > UNIFORM_SCALE_TOLERANCE:
         out["why"] = (f"the faces of this map sit under nodes of different scales ({', '.join(f'{x:g}' for x in found[:6])}); "
                       "glTF thickness is in each mesh's own units, so no single factor fits — bake such instances "
                       "separately or apply their scales")

@@ -36,7 +36,8 @@ from pathlib import Path
 
 import numpy as np
 
-from thickbake.constants import DEGENERATE_NORMAL_LENGTH, MERGE_TOLERANCE_FRACTION
+from thickbake.constants import (DEGENERATE_AREA_FRACTION, DEGENERATE_NORMAL_LENGTH, FLOAT32_EXTENT_RANGE,
+                                 MERGE_TOLERANCE_FRACTION, MIN_EXTENT_ULPS)
 from thickbake.errors import ThickbakeError
 from thickbake.inputs import check_regular_file, iter_regular_file, read_regular_file
 from thickbake.pipeline.validate import check_glb, check_gltf, check_gltf_document, check_obj, check_ply, confined_resolver
@@ -364,31 +365,161 @@ def _file_normals(geom, vertices: np.ndarray, faces: np.ndarray) -> np.ndarray |
 # ---------------------------------------------------------------------------- assembly
 def _assemble(parts: list[Part], materials: list[Material], name: str, path: str | None, sha256: str | None,
               need_uv: bool = True) -> Asset:
-    where = path or name
-    n_sets = max(len(p.uv_sets) for p in parts)
-    triangles = np.concatenate([p.triangles for p in parts])
-    uv_sets = [np.concatenate([p.uv_sets[s] if s < len(p.uv_sets) else np.full((len(p.triangles), 3, 2), np.nan)
-                               for p in parts]) for s in range(n_sets)]
-    triangle_normals = np.concatenate([p.normals if p.normals is not None else np.zeros((len(p.triangles), 3, 3))
-                                       for p in parts])
-    has_file_normals = np.concatenate([np.full(len(p.triangles), p.normals is not None) for p in parts])
-    face_part = np.concatenate([np.full(len(p.triangles), i, np.int64) for i, p in enumerate(parts)])
-    face_material = np.concatenate([np.full(len(p.triangles), p.material, np.int64) for p in parts])
-    face_scale = np.concatenate([np.full(len(p.triangles), p.scale, np.float64) for p in parts])
-    meshes = sorted({p.mesh for p in parts})
-    face_mesh = np.concatenate([np.full(len(p.triangles), meshes.index(p.mesh), np.int64) for p in parts])
-    vertices_in_file = int(sum(p.vertices or 3 * len(p.triangles) for p in parts))
+    """Flatten the parts into one checked, re-centred, welded and outward-wound :class:`Asset`.
 
-    if not np.isfinite(triangles).all():
+    The steps, each its own function below: stack the parts' per-face arrays (:func:`_stack_parts`),
+    check the UV sets (:func:`_checked_uvs`), re-centre on the bounding box (:func:`_recentred`),
+    weld by position for the ray engine (:func:`_welded`), find zero-area faces
+    (:func:`_degenerate_faces`), reverse an inside-out mesh (:meth:`_Corners.reversed`), count open
+    and shared edges (:func:`_topology`), word the warnings (:func:`_load_warnings`) and complete the
+    shading normals (:func:`_shading_normals`).
+
+    Raises
+    ------
+    ThickbakeError
+        Non-finite vertices or UVs, no UVs (when ``need_uv``), a UV layout of zero area, coordinates
+        float32 cannot resolve, or no triangle with an area.
+    """
+    where = path or name
+    faces = _stack_parts(parts)
+    if not np.isfinite(faces.triangles).all():
         raise ThickbakeError("the mesh has vertices that are NaN or infinite", path=where,
                              fix="clean the mesh (delete loose or broken vertices) and export again")
-    # A UV set counts for a face when all three corners carry finite UVs; a face with some corners
-    # NaN and others finite is broken data.
+    uv = _checked_uvs(faces.uv_sets, len(faces.triangles), need_uv, where)
+    triangles, centre, lo, diagonal = _recentred(faces.triangles, where)
+    trace_vertices, trace_faces = _welded(triangles, lo, diagonal)
+    cross = triangle_cross(triangles)
+    double_area = double_areas(triangles, cross)
+    degenerate = _degenerate_faces(trace_faces, double_area, diagonal, where)
+    corners = _Corners(triangles, uv.triangle_uv, faces.normals, uv.sets, cross)
+
+    volume = signed_volume(trace_vertices, trace_faces[~degenerate])
+    flipped = volume < 0
+    if flipped:
+        trace_faces = trace_faces[:, ::-1].copy()
+        corners = corners.reversed()
+        volume = -volume
+    topology = _topology(trace_vertices, trace_faces[~degenerate])
+    warnings = _load_warnings(flipped, topology, int(degenerate.sum()), ~np.logical_or.reduce(uv.finite), parts,
+                              faces.part)
+    face_normals = unit_normals(corners.triangles, corners.cross, double_area)
+    triangle_normals = _shading_normals(corners.normals, faces.file_normals, trace_faces, face_normals, double_area)
+
+    report = MeshReport(
+        faces=int(len(triangles)), vertices_in_file=faces.vertices_in_file, vertices_merged=int(len(trace_vertices)),
+        watertight=topology.watertight, winding_consistent=topology.winding_consistent,
+        boundary_edges=topology.boundary_edges, non_manifold_edges=topology.non_manifold_edges,
+        boundary_length=topology.boundary_length, volume=volume, area=float(double_area.sum() / 2),
+        orientation_flipped=flipped, normals_from_file=bool(faces.file_normals.all()),
+        faces_without_uv=int((~uv.has_uv).sum()), uv_outside_unit_square=uv.outside,
+        degenerate_faces=int(degenerate.sum()), uv_sets=len(corners.uv_sets),
+        materials=int(len(np.unique(faces.material))), parts=len(parts), warnings=warnings,
+    )
+    return Asset(
+        triangles=corners.triangles, triangle_uv=corners.triangle_uv,
+        triangle_normals=triangle_normals, face_normals=face_normals, has_uv=uv.has_uv,
+        trace_vertices=trace_vertices, trace_faces=trace_faces, report=report,
+        name=name, path=path, sha256=sha256, centre=centre,
+        uv_sets=[np.where(f[:, None, None], s, np.nan) for f, s in zip(uv.finite, corners.uv_sets)],
+        face_material=faces.material, materials=list(materials), face_part=faces.part,
+        parts=[p.name for p in parts], part_aliases=[tuple(p.aliases) for p in parts],
+        face_scale=faces.scale, face_mesh=faces.mesh, face_degenerate=degenerate,
+    )
+
+
+@dataclass
+class _StackedParts:
+    """The parts' per-face arrays, stacked in part order (f faces in all).
+
+    Attributes
+    ----------
+    triangles : (f, 3, 3) float64
+        World corner positions, scene units.
+    uv_sets : list of (f, 3, 2) float64
+        Corner UVs of each UV set any part has; NaN where a part lacks that set.
+    normals : (f, 3, 3) float64
+        The file's corner normals (not normalised); 0 for parts without normals.
+    file_normals : (f,) bool
+        Faces whose part carries normals.
+    part, material, mesh : (f,) int64
+        Index of each face's part, material and (sorted) instanced mesh.
+    scale : (f,) float64
+        Uniform node scale of each face's part (NaN: uneven).
+    vertices_in_file : int
+        Vertices the parts had in the file (3 per triangle where unknown).
+    """
+
+    triangles: np.ndarray
+    uv_sets: list
+    normals: np.ndarray
+    file_normals: np.ndarray
+    part: np.ndarray
+    material: np.ndarray
+    mesh: np.ndarray
+    scale: np.ndarray
+    vertices_in_file: int
+
+
+def _stack_parts(parts: list[Part]) -> _StackedParts:
+    """Concatenate the parts' triangles, UV sets, normals and per-face labels (see :class:`_StackedParts`)."""
+    n_sets = max(len(p.uv_sets) for p in parts)
+    meshes = sorted({p.mesh for p in parts})
+
+    def per_face(value_of, dtype=None) -> np.ndarray:
+        return np.concatenate([np.full(len(p.triangles), value_of(i, p), dtype) for i, p in enumerate(parts)])
+
+    return _StackedParts(
+        triangles=np.concatenate([p.triangles for p in parts]),
+        uv_sets=[np.concatenate([p.uv_sets[s] if s < len(p.uv_sets) else np.full((len(p.triangles), 3, 2), np.nan)
+                                 for p in parts]) for s in range(n_sets)],
+        normals=np.concatenate([p.normals if p.normals is not None else np.zeros((len(p.triangles), 3, 3))
+                                for p in parts]),
+        file_normals=per_face(lambda i, p: p.normals is not None),
+        part=per_face(lambda i, p: i, np.int64),
+        material=per_face(lambda i, p: p.material, np.int64),
+        mesh=per_face(lambda i, p: meshes.index(p.mesh), np.int64),
+        scale=per_face(lambda i, p: p.scale, np.float64),
+        vertices_in_file=int(sum(p.vertices or 3 * len(p.triangles) for p in parts)),
+    )
+
+
+@dataclass
+class _CheckedUVs:
+    """The UV sets after :func:`_checked_uvs` (f faces).
+
+    Attributes
+    ----------
+    sets : list of (f, 3, 2) float64
+        Corner UVs of each set (one all-NaN set for a traced-only solid).
+    finite : list of (f,) bool
+        Faces whose three corners carry finite UVs, per set.
+    has_uv : (f,) bool
+        ``finite[0]``: the faces that get texels.
+    triangle_uv : (f, 3, 2) float64
+        UV set 0, 0 where a face has none.
+    outside : float
+        Share of set 0's UV area (by triangle centroid) outside [0, 1]².
+    """
+
+    sets: list
+    finite: list
+    has_uv: np.ndarray
+    triangle_uv: np.ndarray
+    outside: float
+
+
+def _checked_uvs(uv_sets: list, n_faces: int, need_uv: bool, where: str) -> _CheckedUVs:
+    """Check the (f, 3, 2) UV sets: no half-finite faces, some UVs (when ``need_uv``), a non-zero area.
+
+    A UV set counts for a face when all three corners carry finite UVs; a face with some corners NaN
+    and others finite is broken data.  A traced-only solid (``need_uv`` False) gets one all-NaN set:
+    its UVs, if any, are never read.
+    """
     finite = [np.isfinite(uv).all(axis=(1, 2)) for uv in uv_sets]
     partial = [~f & np.isfinite(uv).any(axis=(1, 2)) for f, uv in zip(finite, uv_sets)]
-    if not need_uv:  # a traced-only solid: its UVs, if any, are never read
-        uv_sets = [np.full((len(triangles), 3, 2), np.nan)]
-        finite = partial = [np.zeros(len(triangles), bool)]
+    if not need_uv:
+        uv_sets = [np.full((n_faces, 3, 2), np.nan)]
+        finite = partial = [np.zeros(n_faces, bool)]
     if any(p.any() for p in partial):
         raise ThickbakeError("the mesh has UV coordinates that are NaN or infinite", path=where,
                              fix="repair the UV layout and export again")
@@ -397,141 +528,160 @@ def _assemble(parts: list[Part], materials: list[Material], name: str, path: str
                              fix="unwrap it (give it a UV layout) and export with texture coordinates")
     has_uv = finite[0]
     triangle_uv = np.where(has_uv[:, None, None], uv_sets[0], 0.0)
+    outside = 0.0
     if has_uv.any():
         uv_area = uv_areas(triangle_uv[has_uv])
         if not (uv_area.sum() > 0):
             raise ThickbakeError("the UV layout has zero area (all UVs collapse to a point or a line)", path=where,
                                  fix="unwrap the mesh so its UV islands cover part of the 0–1 square")
         outside = _uv_outside_fraction(triangle_uv[has_uv], uv_area)
-    else:
-        outside = 0.0
+    return _CheckedUVs(uv_sets, finite, has_uv, triangle_uv, outside)
 
-    # re-centre on the bounding-box centre in float64, before anything is cast to float32
+
+def _recentred(triangles: np.ndarray, where: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """Shift (f, 3, 3) world corners, scene units, onto their bounding-box centre, in float64.
+
+    Done before anything is cast to float32 (module docstring).  Returns the shifted corners, the
+    (3,) centre, the (3,) shifted lower corner of the bounding box and the diagonal (scene units),
+    after :func:`_check_representable` has accepted the extent.
+    """
     flat = triangles.reshape(-1, 3)
     lo, hi = flat.min(axis=0), flat.max(axis=0)
     centre = (lo + hi) / 2
     diagonal = float(np.linalg.norm(hi - lo))
     _check_representable(lo, hi, diagonal, where)
-    triangles = triangles - centre
+    return triangles - centre, centre, lo - centre, diagonal
+
+
+def _welded(triangles: np.ndarray, lo: np.ndarray, diagonal: float) -> tuple[np.ndarray, np.ndarray]:
+    """(m, 3) float64 vertices and (f, 3) int64 faces of the (f, 3, 3) corners merged by position.
+
+    Corners on one cell of a grid of :data:`~thickbake.constants.MERGE_TOLERANCE_FRACTION` × the
+    diagonal, anchored at the bounding box's lower corner ``lo`` (3,), become one vertex.
+    """
     flat = triangles.reshape(-1, 3)
-    lo, hi = lo - centre, hi - centre
     tol = diagonal * MERGE_TOLERANCE_FRACTION
     keys = np.round((flat - lo) / tol).astype(np.int64)
     _, first, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
-    trace_vertices = flat[first]
-    trace_faces = inverse.reshape(-1, 3).astype(np.int64)
+    return flat[first], inverse.reshape(-1, 3).astype(np.int64)
 
-    cross = triangle_cross(triangles)
-    double_area = double_areas(triangles, cross)
-    # zero-area triangles (all corners on a line, or two welded together) have no inside or outside:
-    # they are left out of every topology count, so they cannot pass for holes or flipped faces
-    welded = trace_faces
-    degenerate = ((welded[:, 0] == welded[:, 1]) | (welded[:, 1] == welded[:, 2]) | (welded[:, 0] == welded[:, 2])
+
+def _degenerate_faces(faces: np.ndarray, double_area: np.ndarray, diagonal: float, where: str) -> np.ndarray:
+    """(f,) bool zero-area triangles: two welded corners, or twice the area (f,), scene units², below
+    (:data:`~thickbake.constants.DEGENERATE_AREA_FRACTION` × diagonal)².
+
+    They have no inside or outside, so they are left out of every topology count and cannot pass for
+    holes or flipped faces.  Raises ThickbakeError when every triangle is degenerate.
+    """
+    degenerate = ((faces[:, 0] == faces[:, 1]) | (faces[:, 1] == faces[:, 2]) | (faces[:, 0] == faces[:, 2])
                   | ~(double_area > (DEGENERATE_AREA_FRACTION * diagonal) ** 2))
     if degenerate.all():
         raise ThickbakeError("the mesh has no surface area (every triangle is degenerate: its corners are collinear "
                              "or coincide)", path=where, fix="export the real geometry, not a line or a point cloud")
-    solid_faces = trace_faces[~degenerate]
+    return degenerate
 
-    volume = signed_volume(trace_vertices, solid_faces)
-    flipped = False
-    warnings: list[str] = []
-    if volume < 0:
-        flipped = True
-        trace_faces = trace_faces[:, ::-1].copy()
-        solid_faces = solid_faces[:, ::-1].copy()
-        triangles = triangles[:, ::-1].copy()
-        uv_sets = [uv[:, ::-1].copy() for uv in uv_sets]
-        triangle_uv = triangle_uv[:, ::-1].copy()
-        triangle_normals = triangle_normals[:, ::-1].copy()
-        cross = -cross
-        volume = -volume
-        warnings.append("the mesh was inside-out (negative volume); its winding was reversed for the bake")
 
-    edges = np.sort(solid_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
+@dataclass
+class _Corners:
+    """The per-corner arrays whose order is the winding (f faces): reversed together when a mesh is inside-out.
+
+    Attributes
+    ----------
+    triangles : (f, 3, 3) float64
+        Re-centred corner positions, scene units.
+    triangle_uv : (f, 3, 2) float64
+        UV set 0.
+    normals : (f, 3, 3) float64
+        The file's corner normals.
+    uv_sets : list of (f, 3, 2) float64
+    cross : (f, 3) float64
+        Edge cross product of each triangle (twice its area times its unit normal).
+    """
+
+    triangles: np.ndarray
+    triangle_uv: np.ndarray
+    normals: np.ndarray
+    uv_sets: list
+    cross: np.ndarray
+
+    def reversed(self) -> "_Corners":
+        """The same triangles wound the other way (corner order reversed, normals of the winding negated)."""
+        return _Corners(self.triangles[:, ::-1].copy(), self.triangle_uv[:, ::-1].copy(),
+                        self.normals[:, ::-1].copy(), [uv[:, ::-1].copy() for uv in self.uv_sets], -self.cross)
+
+
+@dataclass
+class _Topology:
+    """Edge counts of the welded, non-degenerate faces (lengths in scene units)."""
+
+    boundary_edges: int
+    boundary_length: float
+    non_manifold_edges: int
+    watertight: bool
+    winding_consistent: bool
+
+
+def _topology(vertices: np.ndarray, faces: np.ndarray) -> _Topology:
+    """Open edges (used once), edges shared by more than two faces and winding consistency of (f, 3)
+    int64 faces over (m, 3) float64 vertices."""
+    edges = np.sort(faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
     unique_edges, edge_counts = np.unique(edges, axis=0, return_counts=True)
     boundary = unique_edges[edge_counts == 1]
     non_manifold = int((edge_counts > 2).sum())
-    boundary_length = float(np.linalg.norm(trace_vertices[boundary[:, 0]] - trace_vertices[boundary[:, 1]], axis=1).sum())
-    watertight = bool(len(boundary) == 0 and non_manifold == 0)
-    winding_consistent = _winding_consistent(solid_faces)
-    if len(boundary):
-        warnings.append(f"the mesh is not closed ({len(boundary)} open edges after merging seams); "
+    boundary_length = float(np.linalg.norm(vertices[boundary[:, 0]] - vertices[boundary[:, 1]], axis=1).sum())
+    return _Topology(boundary_edges=int(len(boundary)), boundary_length=boundary_length,
+                     non_manifold_edges=non_manifold, watertight=bool(len(boundary) == 0 and non_manifold == 0),
+                     winding_consistent=_winding_consistent(faces))
+
+
+def _load_warnings(flipped: bool, topology: _Topology, n_degenerate: int, no_uv: np.ndarray, parts: list[Part],
+                   face_part: np.ndarray) -> list[str]:
+    """The load's warnings, in the order they are printed; ``no_uv`` (f,) bool marks faces without
+    UVs in any set and ``face_part`` (f,) int64 their parts."""
+    warnings: list[str] = []
+    if flipped:
+        warnings.append("the mesh was inside-out (negative volume); its winding was reversed for the bake")
+    if topology.boundary_edges:
+        warnings.append(f"the mesh is not closed ({topology.boundary_edges} open edges after merging seams); "
                         "rays escaping through holes count as the full reach — run 'thickbake verify' on it")
-    if non_manifold:
-        warnings.append(f"{non_manifold} edges are shared by more than two faces (internal or duplicated faces) — "
-                        "run 'thickbake verify' on the mesh")
-    if not winding_consistent:
+    if topology.non_manifold_edges:
+        warnings.append(f"{topology.non_manifold_edges} edges are shared by more than two faces (internal or "
+                        "duplicated faces) — run 'thickbake verify' on the mesh")
+    if not topology.winding_consistent:
         warnings.append("some faces are wound opposite to their neighbours; their normals point inward — "
                         "run 'thickbake verify' on the mesh")
-    n_degenerate = int(degenerate.sum())
     if n_degenerate:
         warnings.append(f"{n_degenerate} degenerate (zero-area) triangles: they get no texels and block no rays — "
                         "delete them (merge vertices by distance, remove degenerate faces) and export again")
-    no_uv = ~np.logical_or.reduce(finite)
     if no_uv.any():
         names = sorted({parts[i].name for i in np.unique(face_part[no_uv])})
         shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
         warnings.append(f"{int(no_uv.sum())} faces have no UV coordinates (in {shown}): they block rays but get no "
                         "texels — unwrap them if they need a map")
+    return warnings
 
-    face_normals = unit_normals(triangles, cross, double_area)
 
-    need = ~has_file_normals
+def _shading_normals(file_normals: np.ndarray, from_file: np.ndarray, faces: np.ndarray, face_normals: np.ndarray,
+                     double_area: np.ndarray) -> np.ndarray:
+    """(f, 3, 3) float64 unit shading normal of each corner.
+
+    Faces whose part carries no normals (``from_file`` (f,) bool false) take crease-aware corner
+    normals (:func:`corner_normals` over the (f, 3) welded ``faces``, :data:`CREASE_ANGLE_DEG`);
+    normals that cancel to (nearly) zero length fall back to the (f, 3) unit face normal.
+    """
+    normals = file_normals.copy()
+    need = ~from_file
     if need.any():
-        computed = corner_normals(trace_faces, face_normals, double_area, CREASE_ANGLE_DEG)
-        triangle_normals[need] = computed[need]
-    lengths = np.linalg.norm(triangle_normals, axis=2, keepdims=True)
+        computed = corner_normals(faces, face_normals, double_area, CREASE_ANGLE_DEG)
+        normals[need] = computed[need]
+    lengths = np.linalg.norm(normals, axis=2, keepdims=True)
     bad = ~(lengths > DEGENERATE_NORMAL_LENGTH)
-    triangle_normals = np.where(bad, face_normals[:, None, :], triangle_normals / np.where(bad, 1.0, lengths))
-
-    report = MeshReport(
-        faces=int(len(triangles)),
-        vertices_in_file=vertices_in_file,
-        vertices_merged=int(len(trace_vertices)),
-        watertight=watertight,
-        winding_consistent=winding_consistent,
-        boundary_edges=int(len(boundary)),
-        non_manifold_edges=non_manifold,
-        boundary_length=boundary_length,
-        volume=volume,
-        area=float(double_area.sum() / 2),
-        orientation_flipped=flipped,
-        normals_from_file=bool(has_file_normals.all()),
-        faces_without_uv=int((~has_uv).sum()),
-        uv_outside_unit_square=outside,
-        degenerate_faces=n_degenerate,
-        uv_sets=len(uv_sets),
-        materials=int(len(np.unique(face_material))),
-        parts=len(parts),
-        warnings=warnings,
-    )
-    return Asset(
-        triangles=triangles, triangle_uv=triangle_uv,
-        triangle_normals=triangle_normals, face_normals=face_normals, has_uv=has_uv,
-        trace_vertices=trace_vertices, trace_faces=trace_faces, report=report,
-        name=name, path=path, sha256=sha256, centre=centre,
-        uv_sets=[np.where(f[:, None, None], uv, np.nan) for f, uv in zip(finite, uv_sets)],
-        face_material=face_material, materials=list(materials), face_part=face_part,
-        parts=[p.name for p in parts], part_aliases=[tuple(p.aliases) for p in parts],
-        face_scale=face_scale, face_mesh=face_mesh, face_degenerate=degenerate,
-    )
-
-
-#: Triangles whose area is below (this × diagonal)² count as degenerate: float64 cross products of
-#: unit-scale corners resolve areas down to ~1e-16, so 1e-9 of the diagonal squared (1e-18) is well
-#: inside round-off of a zero area and far below any real triangle.
-DEGENERATE_AREA_FRACTION = 1e-9
-#: A mesh whose extent is below this many float64 ulps of its largest coordinate has lost its shape
-#: to rounding before thickbake sees it: 2²⁰ ulps leave ~6 significant digits of the shape.
-MIN_EXTENT_ULPS = 2.0**20
-#: float32 handles magnitudes from ~1.2e-38 to ~3.4e38; squared distances inside the ray engine must
-#: stay finite and normal, so the extent must lie well inside the square root of that range.
-FLOAT32_EXTENT_RANGE = (1e-15, 1e15)
+    return np.where(bad, face_normals[:, None, :], normals / np.where(bad, 1.0, lengths))
 
 
 def _check_representable(lo: np.ndarray, hi: np.ndarray, diagonal: float, where: str) -> None:
-    """Refuse coordinates the bake cannot trace faithfully (see the constants above)."""
+    """Refuse coordinates the bake cannot trace faithfully (:data:`~thickbake.constants.FLOAT32_EXTENT_RANGE`,
+    :data:`~thickbake.constants.MIN_EXTENT_ULPS`)."""
     if not (diagonal > 0):
         raise ThickbakeError("the mesh has no extent (all vertices at one point)", path=where,
                              fix="export the real geometry")

@@ -32,13 +32,11 @@ from pathlib import Path
 
 import numpy as np
 
+from thickbake.constants import UNIFORM_SCALE_TOLERANCE
 from thickbake.errors import ThickbakeError
 from thickbake.geometry import expand_ranges
 from thickbake.inputs import confined_path, read_regular_file
 
-#: Relative spread of a node transform's singular values below which its scale counts as uniform:
-#: float32 matrices composed over a few levels carry ~1e-7 relative error each.
-UNIFORM_SCALE_TOLERANCE = 1e-5
 
 
 @dataclass

@@ -7,9 +7,9 @@ bake then start there, along the source's own normal, exactly as in a bake of th
 
 Matching a target point p with outward unit normal n
 ----------------------------------------------------
-* **Search distance D** (default :data:`SEARCH_DIAGONAL_FRACTION` of the target's bounding-box
-  diagonal): the line p + t·n is searched for |t| ≤ D, outwards and inwards, and the source crossing
-  nearest to p is taken.
+* **Search distance D** (default :data:`thickbake.constants.SEARCH_DIAGONAL_FRACTION` of the
+  target's bounding-box diagonal): the line p + t·n is searched for |t| ≤ D, outwards and inwards,
+  and the source crossing nearest to p is taken.
 * **Cage** (a mesh with the same triangles, corner for corner, as the target, usually the target
   pushed outwards): the cage point c at the sample's barycentric coordinates sets the direction
   (c − p)/|c − p| and the distance |c − p|; the search runs from c through p and as far again beyond
@@ -37,19 +37,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from thickbake.constants import SEARCH_DIAGONAL_FRACTION
 from thickbake.errors import ThickbakeError
 from thickbake.pipeline.load import Asset, load_asset
 from thickbake.pipeline.texels import EDGE_MARGIN_BIASES, SurfaceSamples, keep_off_edges, surface_points
 from thickbake.pipeline.trace import RayEngine
-
-#: Default search distance as a fraction of the *target's* bounding-box diagonal.  It must exceed the
-#: gap between the target and the source, whose typical size is the facet sag of the low-polygon
-#: target, R·(1 − cos(π/n)) for n segments around a round part of radius R: 3.9% of the diagonal
-#: (2√3·R of a sphere's box) for a six-segment sphere, 0.6% for sixteen segments.  It must also stay
-#: below half the thickness of the thinnest part, or a search could pass through the part and match
-#: its far side (which the facing test then rejects, leaving the sample unprojected instead of wrong).
-#: 5% covers even six-segment round parts.  Judgement, no published source.
-SEARCH_DIAGONAL_FRACTION = 0.05
 
 
 @dataclass(frozen=True)
@@ -329,7 +321,7 @@ def prepare_transfer(target: Asset, source, cage=None, search_distance: float | 
     source : path, trimesh object, Asset, SourceSolid, or a list of the first three
     cage : path, trimesh object or Asset, optional
     search_distance : float, optional
-        Scene units; default :data:`SEARCH_DIAGONAL_FRACTION` × the target's diagonal.
+        Scene units; default :data:`thickbake.constants.SEARCH_DIAGONAL_FRACTION` × the target's diagonal.
     engine : RayEngine, optional
         Over the source's trace mesh moved into the target's frame (``SourceSolid.in_frame(target.centre)``;
         the loader re-centres every mesh on its own bounding box); built if omitted.
@@ -364,5 +356,5 @@ def distance_spread(offset: np.ndarray) -> dict:
     return {"p50": float(np.percentile(a, 50)), "p95": float(np.percentile(a, 95)), "max": float(a.max())}
 
 
-__all__ = ["SEARCH_DIAGONAL_FRACTION", "SourceSolid", "Transfer", "load_source", "cage_triangles", "project",
+__all__ = ["SourceSolid", "Transfer", "load_source", "cage_triangles", "project",
            "barycentric", "prepare_transfer", "distance_spread"]
