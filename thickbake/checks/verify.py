@@ -532,6 +532,12 @@ def verify_shapes(options: dict | None = None, names: str | None = None) -> Veri
 def verify_asset(source, options: dict | None = None) -> VerifyReport:
     """Check that an asset is fit for baking (see the module docstring).
 
+    The rows, each built by its own function below: closed surface (:func:`_closed_surface_row`),
+    faces wound outward (:func:`_orientation_row`), inward rays that meet a front face or escape
+    (:func:`_inward_ray_rows`), UV coverage, overlap and texel density (:func:`_uv_rows`), and Cauchy's
+    mean chord from one flat-shaded bake (:func:`_asset_mean_chord_row`); then the verdict
+    (:func:`_asset_verdict`).
+
     Parameters
     ----------
     source : str, os.PathLike, trimesh.Trimesh or trimesh.Scene
@@ -539,15 +545,19 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
         BakeSettings and RunOptions fields; size, rays, seed, supersample, bias, sequence, bits and the run
         options apply;
         the mean-chord bake overrides cone, lobe, measure, reach and invert.
+
+    Returns
+    -------
+    VerifyReport
+        Mode ``"asset"``, one row per check, the settings of the mean-chord bake.
     """
     from thickbake.pipeline.driver import bake_maps
-    from thickbake.checks.meshcheck import face_orientation, front_face_hits
+    from thickbake.checks.meshcheck import front_face_hits
     from thickbake.pipeline.load import load_asset
-    from thickbake.pipeline.trace import closed_surface, make_engine
+    from thickbake.pipeline.trace import make_engine
 
     start = time.perf_counter()
     asset = load_asset(source)
-    name = asset.name
     rep = asset.report
     user, run = _settings(options, "verify options")
     overridden = [k for k in ("cone", "lobe", "measure", "reach", "invert", "attenuation_distance")
@@ -555,26 +565,55 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     settings = user.replace(cone=90.0, lobe="cosine", measure="thickness", reach=None, invert=False,
                             attenuation_distance=None)
     engine = make_engine(asset.trace_vertices, asset.trace_faces, closed=rep.watertight)
-    checks: list[Check] = []
+    checks = [_closed_surface_row(asset)]
+    orientation = _orientation_row(asset, engine)
+    checks.append(orientation)
+    hits = front_face_hits(asset, engine, INWARD_TEST_RAYS, seed=user.seed)
+    checks += _inward_ray_rows(asset.name, hits)
 
-    # closed surface
+    flat = _flat_shaded(asset)
+    maps = bake_maps(flat, settings, run, engine=engine)
+    uv_rows, overlapping = _uv_rows(asset, maps)
+    checks += uv_rows
+    suspects = _mean_chord_suspects(rep, orientation.figures["wrong_faces"], hits, overlapping)
+    checks.append(_asset_mean_chord_row(flat, maps, overridden, suspects))
+
+    s = maps[0].settings
+    header = [f"thickbake verify {asset.name}: {rep.faces:,} faces, {rep.vertices_merged:,} welded vertices, "
+              f"volume {rep.volume:.6g}, area {rep.area:.6g}, diagonal {asset.diagonal:.6g} scene units",
+              f"checks baked at {_settings_line(s)}"]
+    return VerifyReport("asset", header, checks, s.to_dict(), seconds=time.perf_counter() - start,
+                        verdict=_asset_verdict(checks))
+
+
+def _closed_surface_row(asset) -> Check:
+    """Open edges (and their length, scene units) and edges shared by more than two faces, after welding seams."""
+    name, rep = asset.name, asset.report
     non_manifold = rep.non_manifold_edges
     if rep.boundary_edges == 0 and non_manifold == 0:
-        checks.append(Check(name, "closed surface", PASS, measured=0.0, note="no open edges after welding seams"))
-    else:
-        notes = []
-        if rep.boundary_edges:
-            notes.append(f"close the holes: {rep.boundary_edges:,} open edges, {rep.boundary_length:.4g} scene units "
-                         f"long — rays that leave through them count as the full reach")
-        if non_manifold:
-            notes.append(f"{non_manifold:,} edges are shared by more than two faces: remove internal or "
-                         "duplicated faces")
-        checks.append(Check(name, "closed surface", FAIL, measured=float(rep.boundary_edges), note="; ".join(notes),
-                            figures={"open_edges": rep.boundary_edges, "open_length": rep.boundary_length,
-                                     "non_manifold_edges": non_manifold}))
+        return Check(name, "closed surface", PASS, measured=0.0, note="no open edges after welding seams")
+    notes = []
+    if rep.boundary_edges:
+        notes.append(f"close the holes: {rep.boundary_edges:,} open edges, {rep.boundary_length:.4g} scene units "
+                     f"long — rays that leave through them count as the full reach")
+    if non_manifold:
+        notes.append(f"{non_manifold:,} edges are shared by more than two faces: remove internal or "
+                     "duplicated faces")
+    return Check(name, "closed surface", FAIL, measured=float(rep.boundary_edges), note="; ".join(notes),
+                 figures={"open_edges": rep.boundary_edges, "open_length": rep.boundary_length,
+                          "non_manifold_edges": non_manifold})
 
-    # orientation
-    # zero-area triangles have no orientation: load leaves them out of its checks, and so does verify
+
+def _orientation_row(asset, engine) -> Check:
+    """Faces wound against their neighbours and inside-out parts (:func:`thickbake.checks.meshcheck.face_orientation`).
+
+    Zero-area triangles have no orientation: load leaves them out of its checks, and so does verify
+    (their own engine is built when there are any).  ``figures["wrong_faces"]`` counts the inward faces.
+    """
+    from thickbake.checks.meshcheck import face_orientation
+    from thickbake.pipeline.trace import closed_surface, make_engine
+
+    name, rep = asset.name, asset.report
     solid = asset.trace_faces if asset.face_degenerate is None else asset.trace_faces[~asset.face_degenerate]
     orient = face_orientation(asset.trace_vertices, solid, engine if len(solid) == len(asset.trace_faces)
                               else make_engine(asset.trace_vertices, solid, closed=closed_surface(solid)))
@@ -585,44 +624,47 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
     whole = (" The whole mesh was inside-out (negative volume); thickbake reversed it for the bake, but export it "
              "with outward normals for other tools." if rep.orientation_flipped else "")
     if wrong == 0 and orient.conflicts == 0:
-        checks.append(Check(name, "faces wound outward", PASS, measured=0.0,
-                            note=f"{orient.parts} part{'s' if orient.parts != 1 else ''}, every face outward.{whole}",
-                            figures=figures))
-    else:
-        notes = [f"{wrong:,} of {orient.faces:,} faces ({orient.wrong_share:.2%}) point inward"]
-        if orient.inside_out_parts:
-            notes.append(f"{orient.inside_out_parts} whole part{'s are' if orient.inside_out_parts > 1 else ' is'} "
-                         "inside-out")
-        if orient.conflicts:
-            notes.append(f"{orient.conflicts} adjacent pairs cannot be made consistent (non-orientable surface)")
-        notes.append("recalculate normals outside / flip those faces in your modelling tool — rays from them go "
-                     "outward and miss")
-        checks.append(Check(name, "faces wound outward", FAIL, measured=float(wrong), note="; ".join(notes) + whole,
-                            figures=figures))
+        return Check(name, "faces wound outward", PASS, measured=0.0,
+                     note=f"{orient.parts} part{'s' if orient.parts != 1 else ''}, every face outward.{whole}",
+                     figures=figures)
+    notes = [f"{wrong:,} of {orient.faces:,} faces ({orient.wrong_share:.2%}) point inward"]
+    if orient.inside_out_parts:
+        notes.append(f"{orient.inside_out_parts} whole part{'s are' if orient.inside_out_parts > 1 else ' is'} "
+                     "inside-out")
+    if orient.conflicts:
+        notes.append(f"{orient.conflicts} adjacent pairs cannot be made consistent (non-orientable surface)")
+    notes.append("recalculate normals outside / flip those faces in your modelling tool — rays from them go "
+                 "outward and miss")
+    return Check(name, "faces wound outward", FAIL, measured=float(wrong), note="; ".join(notes) + whole,
+                 figures=figures)
 
-    # inward rays
-    hits = front_face_hits(asset, engine, INWARD_TEST_RAYS, seed=user.seed)
+
+def _inward_ray_rows(name: str, hits) -> list[Check]:
+    """The two rows of the inward-ray test (:func:`thickbake.checks.meshcheck.front_face_hits`): shares
+    of rays that meet a front face first, and of rays that escape."""
     figures = {"rays": hits.rays, "front": hits.front, "escaped": hits.missed}
-    checks.append(Check(name, "rays hitting a front face", PASS if hits.front_share <= FRONT_HIT_LIMIT else FAIL,
-                        measured=hits.front_share, tolerance=FRONT_HIT_LIMIT,
-                        basis="none on a clean closed outward mesh; 0.1% allowed for rays grazing edges (judgement)",
-                        note="" if hits.front_share <= FRONT_HIT_LIMIT else
-                        f"{hits.front:,} of {hits.rays:,} rays met a front face first: intersecting or overlapping "
-                        "parts, internal faces or inward-facing patches; separate or merge the intersecting parts "
-                        "and delete internal faces", figures=figures))
-    checks.append(Check(name, "rays escaping the solid", PASS if hits.missed_share <= ESCAPE_LIMIT else FAIL,
-                        measured=hits.missed_share, tolerance=ESCAPE_LIMIT,
-                        basis="none on a closed mesh; 0.1% allowed for rays slipping through edges (judgement)",
-                        note="" if hits.missed_share <= ESCAPE_LIMIT else
-                        f"{hits.missed:,} of {hits.rays:,} rays left the mesh without meeting it again: holes or "
-                        "faces pointing inward (see above)", figures=figures))
+    return [
+        Check(name, "rays hitting a front face", PASS if hits.front_share <= FRONT_HIT_LIMIT else FAIL,
+              measured=hits.front_share, tolerance=FRONT_HIT_LIMIT,
+              basis="none on a clean closed outward mesh; 0.1% allowed for rays grazing edges (judgement)",
+              note="" if hits.front_share <= FRONT_HIT_LIMIT else
+              f"{hits.front:,} of {hits.rays:,} rays met a front face first: intersecting or overlapping "
+              "parts, internal faces or inward-facing patches; separate or merge the intersecting parts "
+              "and delete internal faces", figures=figures),
+        Check(name, "rays escaping the solid", PASS if hits.missed_share <= ESCAPE_LIMIT else FAIL,
+              measured=hits.missed_share, tolerance=ESCAPE_LIMIT,
+              basis="none on a closed mesh; 0.1% allowed for rays slipping through edges (judgement)",
+              note="" if hits.missed_share <= ESCAPE_LIMIT else
+              f"{hits.missed:,} of {hits.rays:,} rays left the mesh without meeting it again: holes or "
+              "faces pointing inward (see above)", figures=figures),
+    ]
 
-    # the bake for UV figures and the mean chord
-    flat = _flat_shaded(asset)
-    maps = bake_maps(flat, settings, run, engine=engine)
-    result = maps[0]
-    s = result.settings
-    info = result.info
+
+def _uv_rows(asset, maps) -> tuple[list[Check], bool]:
+    """UV coverage (share of texels), overlap (share of covered texels claimed twice) and texel-density
+    spread rows of the asset's maps, and whether the overlap is high enough to warn."""
+    name, rep = asset.name, asset.report
+    s = maps[0].settings
     coverage_share = float(np.mean([m.info["coverage"] for m in maps]))
     cov_note = f"{coverage_share:.1%} of the {s.width}x{s.height} texels are covered"
     if len(maps) > 1:
@@ -635,30 +677,61 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
         uv_status = WARN
         cov_note += (f"; {rep.degenerate_faces:,} degenerate (zero-area) triangles: delete them (merge vertices by "
                      "distance) and export again")
-    checks.append(Check(name, "UV coverage", uv_status, measured=coverage_share, note=cov_note))
+    rows = [Check(name, "UV coverage", uv_status, measured=coverage_share, note=cov_note)]
     overlap = float(max(m.info.get("overlap", 0.0) for m in maps))
     overlapping = overlap > OVERLAP_WARN
-    checks.append(Check(name, "UV overlap", WARN if overlapping else INFO, measured=overlap, tolerance=OVERLAP_WARN,
-                        note=(f"{overlap:.2%} of covered texels are claimed by more than one triangle (stacked or "
-                              "mirrored islands): they average every surface mapped there — give parts of different "
-                              "thickness their own UV space" if overlapping else
-                              f"{overlap:.2%} of covered texels claimed twice")))
-    # texel density is judged within each map (maps of different materials are separate textures);
-    # the map with the widest spread speaks for the asset
+    rows.append(Check(name, "UV overlap", WARN if overlapping else INFO, measured=overlap, tolerance=OVERLAP_WARN,
+                      note=(f"{overlap:.2%} of covered texels are claimed by more than one triangle (stacked or "
+                            "mirrored islands): they average every surface mapped there — give parts of different "
+                            "thickness their own UV space" if overlapping else
+                            f"{overlap:.2%} of covered texels claimed twice")))
+    rows.append(_density_row(name, maps))
+    return rows, overlapping
+
+
+def _density_row(name: str, maps) -> Check:
+    """Texel-density spread: p95 / p5 of the world area per texel (scene units²).
+
+    Density is judged within each map (maps of different materials are separate textures); the map
+    with the widest spread speaks for the asset.
+    """
     spreads = []
     for m in maps:
         per_texel = m.area[m.area > 0].astype(np.float64)
         q5, q95 = (np.percentile(per_texel, [5, 95]) if per_texel.size else (0.0, 0.0))
         spreads.append((q95 / q5 if q5 > 0 else math.inf, q5, q95))
     spread, p5, p95 = max(spreads, key=lambda x: x[0])
-    checks.append(Check(name, "texel density spread p95/p5", WARN if spread > DENSITY_SPREAD_WARN else INFO,
-                        measured=spread, tolerance=DENSITY_SPREAD_WARN,
-                        note=(f"world area per texel p5 {p5:.3g}, p95 {p95:.3g} scene units²"
-                              + (": texel size varies by more than 2x; even out the UV scale if detail matters "
-                                 "everywhere" if spread > DENSITY_SPREAD_WARN else "")),
-                        figures={"area_p5": p5, "area_p95": p95}))
+    return Check(name, "texel density spread p95/p5", WARN if spread > DENSITY_SPREAD_WARN else INFO,
+                 measured=spread, tolerance=DENSITY_SPREAD_WARN,
+                 note=(f"world area per texel p5 {p5:.3g}, p95 {p95:.3g} scene units²"
+                       + (": texel size varies by more than 2x; even out the UV scale if detail matters "
+                          "everywhere" if spread > DENSITY_SPREAD_WARN else "")),
+                 figures={"area_p5": p5, "area_p95": p95})
 
-    # Cauchy's mean chord
+
+def _mean_chord_suspects(rep, wrong_faces: int, hits, overlapping: bool) -> list[str]:
+    """What the rows above found that would bend the mean chord, in the order the note names them."""
+    suspects = []
+    if rep.boundary_edges:
+        suspects.append("holes")
+    if wrong_faces:
+        suspects.append("faces pointing inward")
+    if hits.front_share > FRONT_HIT_LIMIT and not wrong_faces:
+        suspects.append("intersecting parts or internal faces")
+    if overlapping:
+        suspects.append("overlapping UVs")
+    return suspects
+
+
+def _asset_mean_chord_row(flat, maps, overridden: list[str], suspects: list[str]) -> Check:
+    """Cauchy's mean chord 4V/S (scene units) of the flat-shaded asset against its one bake.
+
+    Skipped when the asset bakes into several maps or more than :data:`UNSAMPLED_LIMIT` of its
+    surface has no texels; a failure names ``suspects`` (:func:`_mean_chord_suspects`).
+    """
+    name, rep = flat.name, flat.report
+    result = maps[0]
+    s = result.settings
     unsampled = 0.0
     if rep.area > 0 and len(maps) == 1:
         from thickbake.checks.coverage import exact_texel_coverage
@@ -666,45 +739,33 @@ def verify_asset(source, options: dict | None = None) -> VerifyReport:
         coverage = exact_texel_coverage(flat, s.width, s.height)
         unsampled = max(0.0, 1.0 - coverage.face_covered.sum() / rep.area)
     if len(maps) > 1:
-        checks.append(Check(name, "Cauchy mean chord 4V/S", SKIP,
-                            note=f"not applicable: the asset bakes into {len(maps)} maps (per material and UDIM tile); "
-                                 "the check needs the whole surface in one layout"))
-    elif unsampled > UNSAMPLED_LIMIT:
-        checks.append(Check(name, "Cauchy mean chord 4V/S", SKIP,
-                            note=f"not applicable: {unsampled:.1%} of the surface has no texels (no UVs or UVs "
-                                 "outside the 0–1 square)"))
-    else:
-        expected = 4.0 * rep.volume / rep.area
-        row = _mean_chord_row(name, flat, result, expected, capped=False)
-        row.note = ("bake with cone 90°, cosine lobe, thickness, reach = diagonal, flat shading"
-                    + (f" (overrides your {', '.join('--' + k.replace('_', '-') for k in overridden)})"
-                       if overridden else ""))
-        if row.status == FAIL:
-            direction = "longer" if row.measured > expected else "shorter"
-            causes = []
-            if rep.boundary_edges:
-                causes.append("holes")
-            if wrong:
-                causes.append("faces pointing inward")
-            if hits.front_share > FRONT_HIT_LIMIT and not wrong:
-                causes.append("intersecting parts or internal faces")
-            if overlapping:
-                causes.append("overlapping UVs")
-            row.note += (f"; chords read {direction} than the solid allows ({row.figures['relative_error']:+.2%}): "
-                         f"{' and '.join(causes) if causes else 'some inward rays do not measure the solid'} — "
-                         "fix the rows above and verify again")
-        checks.append(row)
+        return Check(name, "Cauchy mean chord 4V/S", SKIP,
+                     note=f"not applicable: the asset bakes into {len(maps)} maps (per material and UDIM tile); "
+                          "the check needs the whole surface in one layout")
+    if unsampled > UNSAMPLED_LIMIT:
+        return Check(name, "Cauchy mean chord 4V/S", SKIP,
+                     note=f"not applicable: {unsampled:.1%} of the surface has no texels (no UVs or UVs "
+                          "outside the 0–1 square)")
+    expected = 4.0 * rep.volume / rep.area
+    row = _mean_chord_row(name, flat, result, expected, capped=False)
+    row.note = ("bake with cone 90°, cosine lobe, thickness, reach = diagonal, flat shading"
+                + (f" (overrides your {', '.join('--' + k.replace('_', '-') for k in overridden)})"
+                   if overridden else ""))
+    if row.status == FAIL:
+        direction = "longer" if row.measured > expected else "shorter"
+        row.note += (f"; chords read {direction} than the solid allows ({row.figures['relative_error']:+.2%}): "
+                     f"{' and '.join(suspects) if suspects else 'some inward rays do not measure the solid'} — "
+                     "fix the rows above and verify again")
+    return row
 
+
+def _asset_verdict(checks: list[Check]) -> str:
+    """The last line of an asset's report: "fit for baking" (naming the warnings) or what failed."""
     failed = [c for c in checks if c.status == FAIL]
     if failed:
-        verdict = "not fit for baking: " + "; ".join(f"{c.quantity} ({_short(c)})" for c in failed)
-    else:
-        warns = [c.quantity for c in checks if c.status == WARN]
-        verdict = "fit for baking" + (f" (see the warnings: {', '.join(warns)})" if warns else "")
-    header = [f"thickbake verify {name}: {rep.faces:,} faces, {rep.vertices_merged:,} welded vertices, "
-              f"volume {rep.volume:.6g}, area {rep.area:.6g}, diagonal {asset.diagonal:.6g} scene units",
-              f"checks baked at {_settings_line(s)}"]
-    return VerifyReport("asset", header, checks, s.to_dict(), seconds=time.perf_counter() - start, verdict=verdict)
+        return "not fit for baking: " + "; ".join(f"{c.quantity} ({_short(c)})" for c in failed)
+    warns = [c.quantity for c in checks if c.status == WARN]
+    return "fit for baking" + (f" (see the warnings: {', '.join(warns)})" if warns else "")
 
 
 def _short(check: Check) -> str:
