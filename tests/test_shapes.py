@@ -24,6 +24,8 @@ from scipy import integrate, optimize
 from trimesh.ray.ray_triangle import RayMeshIntersector
 
 from thickbake.checks import shapes as S
+from thickbake.errors import ThickbakeError
+from thickbake.lobes import LOBES, Lobe
 
 EPS = np.finfo(np.float64).eps
 F32 = 2.0**-24  # float32 unit roundoff (glTF stores float32)
@@ -534,12 +536,40 @@ def test_cone_limits():
 
 
 def test_cone_argument_errors():
-    with pytest.raises(ValueError, match="lobe"):
-        S.sphere_cone_mean_chord(1.0, 0.5, "lambert")
+    # an unknown lobe raises as everywhere else (thickbake.lobes.lobe_named), in each closed form
+    for form in (S.sphere_cone_mean_chord, S.sphere_cone_chord_second_moment):
+        with pytest.raises(ThickbakeError, match="unknown lobe 'lambert'"):
+            form(1.0, 0.5, "lambert")
+    with pytest.raises(ThickbakeError, match="unknown lobe 'lambert'"):
+        S.sphere_cone_mean_transmittance(1.0, 0.5, "lambert", 1.0)
     with pytest.raises(ValueError, match="cone_half_angle_rad"):
         S.sphere_cone_mean_chord(1.0, 2.0, "cosine")
     with pytest.raises(ValueError, match="sigma"):
         S.sphere_cone_mean_transmittance(1.0, 0.5, "cosine", -1.0)
+
+
+def test_cone_forms_follow_the_lobe_objects():
+    # The closed forms are reached through the lobe object (thickbake.lobes) and must agree with that
+    # lobe's own polar density: E[l] = 2R E[cos θ] with cos θ weighted by Lobe.polar_weight on [c, 1].
+    # Midpoint rule with n nodes: exact for the normaliser (weight 1 or x, linear) and off by at most
+    # (1 - c) h² max|f''| / 24 ≤ h² / 12 for the numerator x^(p+1), h = (1 - c) / n ≤ 1e-5, so a
+    # relative 1e-9 is far outside the quadrature error and far inside any wrong form.
+    R, n = 1.3, 100_000
+    for lobe in LOBES.values():
+        for alpha in (0.3, 1.0, math.pi / 2):
+            c = math.cos(alpha)
+            edges = np.linspace(c, 1.0, n + 1)
+            x = 0.5 * (edges[:-1] + edges[1:])
+            weight = lobe.polar_weight(x)
+            expected = 2 * R * float((weight * x).sum() / weight.sum())
+            assert S.sphere_cone_mean_chord(R, alpha, lobe) == S.sphere_cone_mean_chord(R, alpha, lobe.name)
+            assert S.sphere_cone_mean_chord(R, alpha, lobe) == pytest.approx(expected, rel=1e-9)
+
+    class ConeOfOtherDensity(Lobe):
+        name = "other"
+
+    with pytest.raises(ThickbakeError, match="no closed form"):
+        S.sphere_cone_mean_chord(1.0, 0.5, ConeOfOtherDensity())
 
 
 # ---------------------------------------------------------------------------------------------

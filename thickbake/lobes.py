@@ -38,12 +38,14 @@ class Lobe:
     ----------
     name : str
         The name in settings and sidecars.
-    cosine_power : int
-        p in pdf ∝ cos^p θ (1 cosine-weighted, 0 uniform); closed forms over the lobe use it.
+    cosine_power : int or None
+        p in pdf ∝ cos^p θ (1 cosine-weighted, 0 uniform); closed forms over the lobe use it
+        (:func:`thickbake.checks.shapes.sphere_cone_forms`).  None, the default, for a density of
+        another form: a new lobe then has no closed form until it says which it has.
     """
 
     name: str = ""
-    cosine_power: int = 0
+    cosine_power: int | None = None
 
     def cos_sin(self, u1: np.ndarray, cone_deg: float):
         """cosθ and sinθ (same shape and dtype as ``u1``) of the polar angle drawn from variate u1."""

@@ -63,6 +63,7 @@ import math
 import numpy as np
 
 from thickbake.checks.shapes import _g1, _g2  # the same cancellation-free forms as the cone closed forms
+from thickbake.checks.shapes import sphere_cone_forms
 from thickbake.constants import FLOAT32_EPS, FLOAT32_ULPS
 from thickbake.lobes import lobe_named
 from thickbake.measures import Measure, measure_named
@@ -158,7 +159,7 @@ def sphere_cone_expected(radius: float, cone_rad: float, lobe: str, measure: str
     2.696257825099
     """
     R, rho = float(radius), float(reach)
-    m, cosine = measure_named(measure), lobe_named(lobe).cosine_power == 1
+    m, cosine = measure_named(measure), sphere_cone_forms(lobe).cosine_power == 1
     if cone_rad <= SPHERE_CONE_ZERO_RAD:
         return float(measure_value(2 * R, m, rho, attenuation_distance))
     c = math.cos(cone_rad)

@@ -46,6 +46,8 @@ from typing import Callable, Sequence
 import numpy as np
 import trimesh
 
+from thickbake.errors import ThickbakeError
+from thickbake.lobes import lobe_named
 from thickbake.maps.files import atomic_write_bytes
 from thickbake.checks.surfaces import (
     ISLAND_GAP,
@@ -73,7 +75,7 @@ from thickbake.checks import surfaces as _surfaces  # noqa: E402
 #: The shapes and their closed forms, plus the builders of :mod:`thickbake.surfaces` re-exported.
 __all__ = [
     "Shape", "sphere", "torus", "box", "capped_cylinder", "hollow_shell", "l_block", "shell_and_ball",
-    "analytic_set", "write_shape_set", "shape_record", "sphere_cone_mean_chord",
+    "analytic_set", "write_shape_set", "shape_record", "SphereConeForms", "sphere_cone_forms", "sphere_cone_mean_chord",
     "sphere_cone_chord_second_moment", "sphere_cone_mean_transmittance", "atomic_write_bytes",
     *_surfaces.__all__,
 ]
@@ -771,16 +773,83 @@ def analytic_set() -> list[Shape]:
 # --------------------------------------------------------------------------------------------------
 
 
+@dataclass(frozen=True)
+class SphereConeForms:
+    """The closed forms over a sphere of one lobe's polar density, pdf ∝ cos^p θ on [c, 1].
+
+    Each takes R (scene units) and c = cos α, or τ = 2σR and c, as floats or arrays; the derivations
+    are in the docstrings of :func:`sphere_cone_mean_chord`, :func:`sphere_cone_chord_second_moment`
+    and :func:`sphere_cone_mean_transmittance`.
+
+    Attributes
+    ----------
+    cosine_power : int
+        p, the :attr:`thickbake.lobes.Lobe.cosine_power` these forms hold for.
+    mean_chord : callable (R, c) -> E[l], scene units
+    chord_second_moment : callable (R, c) -> E[l²], scene units²
+    mean_transmittance : callable (τ, c) -> E[exp(−τ cos θ)], unitless
+    """
+
+    cosine_power: int
+    mean_chord: Callable
+    chord_second_moment: Callable
+    mean_transmittance: Callable
+
+
+def _uniform_transmittance(tau, c):
+    span = 1.0 - c
+    return np.exp(-tau * c) * _g1(tau * span)
+
+
+def _cosine_transmittance(tau, c):
+    span = 1.0 - c
+    return 2.0 * np.exp(-tau * c) * (c * _g1(tau * span) + span * _g2(tau * span)) / (1.0 + c)
+
+
+#: The sphere closed forms of every lobe, by the power p of its density ∝ cos^p θ: the forms depend
+#: on the polar density alone, which is all a lobe's ``cosine_power`` says.  A lobe of another
+#: density needs its own entry here before the closed forms (and ``verify``) can check it.
+_SPHERE_CONE_FORMS = {
+    0: SphereConeForms(  # uniform: cos θ uniform on [c, 1]
+        cosine_power=0,
+        mean_chord=lambda radius, c: radius * (1.0 + c),
+        chord_second_moment=lambda radius, c: 4.0 * radius**2 * (1.0 + c + c * c) / 3.0,
+        mean_transmittance=_uniform_transmittance),
+    1: SphereConeForms(  # cosine-weighted: cos θ has density 2 cos θ / (1 - c²) on [c, 1]
+        cosine_power=1,
+        mean_chord=lambda radius, c: 4.0 * radius * (1.0 + c + c * c) / (3.0 * (1.0 + c)),
+        chord_second_moment=lambda radius, c: 2.0 * radius**2 * (1.0 + c * c),
+        mean_transmittance=_cosine_transmittance),
+}
+
+
+def sphere_cone_forms(lobe) -> SphereConeForms:
+    """The closed forms over a sphere for ``lobe`` (a name or a :class:`thickbake.lobes.Lobe`).
+
+    Raises
+    ------
+    ThickbakeError
+        An unknown lobe name (:func:`thickbake.lobes.lobe_named`, as everywhere), or a lobe whose
+        density has no closed form here.
+    """
+    found = lobe_named(lobe)
+    forms = _SPHERE_CONE_FORMS.get(found.cosine_power)
+    if forms is None:
+        raise ThickbakeError(f"lobe {found.name!r} has no closed form over a sphere",
+                             fix="check it with the cosine or uniform lobe")
+    return forms
+
+
 def _cone_args(radius, cone_half_angle_rad, lobe):
-    if lobe not in ("cosine", "uniform"):
-        raise ValueError(f"lobe must be 'cosine' or 'uniform', got {lobe!r}")
+    """The lobe's forms, R as float64 and cos α, after checking the arguments."""
+    forms = sphere_cone_forms(lobe)
     radius = np.asarray(radius, dtype=np.float64)
     alpha = np.asarray(cone_half_angle_rad, dtype=np.float64)
     if np.any(~(radius > 0)):
         raise ValueError(f"radius must be > 0, got {radius}")
     if np.any(~((alpha >= 0) & (alpha <= np.pi / 2))):
         raise ValueError(f"cone_half_angle_rad must be in [0, pi/2], got {alpha}")
-    return radius, np.cos(alpha)
+    return forms, radius, np.cos(alpha)
 
 
 def sphere_cone_mean_chord(radius, cone_half_angle_rad, lobe):
@@ -804,7 +873,8 @@ def sphere_cone_mean_chord(radius, cone_half_angle_rad, lobe):
         Sphere radius R, scene units.
     cone_half_angle_rad : float or array_like
         Cone half-angle alpha in [0, pi/2].
-    lobe : {"cosine", "uniform"}
+    lobe : str or thickbake.lobes.Lobe
+        "cosine" or "uniform" (or their objects); the forms come from :func:`sphere_cone_forms`.
 
     Returns
     -------
@@ -816,11 +886,8 @@ def sphere_cone_mean_chord(radius, cone_half_angle_rad, lobe):
     >>> round(sphere_cone_mean_chord(1.7, 1.0, "cosine"), 12)
     2.696257825099
     """
-    radius, c = _cone_args(radius, cone_half_angle_rad, lobe)
-    if lobe == "uniform":
-        out = radius * (1.0 + c)
-    else:
-        out = 4.0 * radius * (1.0 + c + c * c) / (3.0 * (1.0 + c))
+    forms, radius, c = _cone_args(radius, cone_half_angle_rad, lobe)
+    out = forms.mean_chord(radius, c)
     return float(out) if out.ndim == 0 else out
 
 
@@ -836,18 +903,16 @@ def sphere_cone_chord_second_moment(radius, cone_half_angle_rad, lobe):
     ----------
     radius : float or array_like
     cone_half_angle_rad : float or array_like
-    lobe : {"cosine", "uniform"}
+    lobe : str or thickbake.lobes.Lobe
+        "cosine" or "uniform" (or their objects); the forms come from :func:`sphere_cone_forms`.
 
     Returns
     -------
     float or ndarray
         Scene units squared.
     """
-    radius, c = _cone_args(radius, cone_half_angle_rad, lobe)
-    if lobe == "uniform":
-        out = 4.0 * radius**2 * (1.0 + c + c * c) / 3.0
-    else:
-        out = 2.0 * radius**2 * (1.0 + c * c)
+    forms, radius, c = _cone_args(radius, cone_half_angle_rad, lobe)
+    out = forms.chord_second_moment(radius, c)
     return float(out) if out.ndim == 0 else out
 
 
@@ -904,17 +969,11 @@ def sphere_cone_mean_transmittance(radius, cone_half_angle_rad, lobe, sigma):
     >>> round(sphere_cone_mean_transmittance(1.7, math.pi / 2, "uniform", 1.0), 12)
     0.284301979423
     """
-    radius, c = _cone_args(radius, cone_half_angle_rad, lobe)
+    forms, radius, c = _cone_args(radius, cone_half_angle_rad, lobe)
     sigma = np.asarray(sigma, dtype=np.float64)
     if np.any(~(sigma >= 0)):
         raise ValueError(f"sigma must be >= 0, got {sigma}")
-    tau = 2.0 * sigma * radius
-    span = 1.0 - c
-    x = tau * span
-    if lobe == "uniform":
-        out = np.exp(-tau * c) * _g1(x)
-    else:
-        out = 2.0 * np.exp(-tau * c) * (c * _g1(x) + span * _g2(x)) / (1.0 + c)
+    out = forms.mean_transmittance(2.0 * sigma * radius, c)
     return float(out) if out.ndim == 0 else out
 
 
