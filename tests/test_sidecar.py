@@ -50,3 +50,24 @@ def test_bad_fields_are_named(box_bake, change, field):
 def test_missing_sidecar_is_a_user_error(tmp_path):
     with pytest.raises(ThickbakeError, match="no sidecar"):
         read_sidecar(tmp_path / "nothing.png")
+
+
+def test_packed_sidecar_keeps_earlier_channels_of_the_same_image_only(box_bake, tmp_path):
+    from thickbake.maps.sidecar import Encoding, channel_entry, packed_sidecar, sidecar_path
+
+    s = box_bake.settings
+    entry = channel_entry("thickness", "scene units", s.reach, False, {"file": "box.obj"}, "h", 8)
+    # a channel decodes like a one-channel PNG of the same settings (the same encoding, without "format")
+    enc = entry["encoding"]
+    assert Encoding(enc["code_max"], enc["offset"], enc["scale"]) == Encoding.of(".png", "thickness", s.reach, False, 8)
+    image = tmp_path / "packed.png"
+    first = packed_sidecar(image, {"g": entry}, 8, "v")
+    sidecar_path(image).write_text(json.dumps(first))
+    second = packed_sidecar(image, {"r": dict(entry, settings_hash="other")}, 8, "v")
+    assert list(second["channels"]) == ["r", "g"] and second["channels"]["g"] == entry
+    assert list(packed_sidecar(image, {"r": entry}, 8, "v", keep_earlier=False)["channels"]) == ["r"]
+    # the sidecar of another image, or one that is not JSON, contributes nothing
+    sidecar_path(image).write_text(json.dumps(dict(first, image="other.png")))
+    assert list(packed_sidecar(image, {"r": entry}, 8, "v")["channels"]) == ["r"]
+    sidecar_path(image).write_text("{not json")
+    assert list(packed_sidecar(image, {"r": entry}, 8, "v")["channels"]) == ["r"]

@@ -10,12 +10,12 @@ texture.  :func:`pack_channels` writes one or more maps into channels of a new o
   scale (opaque, so no tool discards the colour of "transparent" texels).
 
 The image's sidecar (``IMAGE.json``) gets one entry per channel with the decode information of the
-map in it, merged with the entries of an earlier run for the channels not written now.
+map in it, merged with the entries of an earlier run for the channels not written now
+(:func:`thickbake.maps.sidecar.packed_sidecar`).
 """
 
 from __future__ import annotations
 
-import json
 import os
 from pathlib import Path
 
@@ -23,8 +23,7 @@ import numpy as np
 
 from thickbake.errors import ThickbakeError
 from thickbake.maps.png import decode_png, encode_png
-
-CHANNELS = "rgba"
+from thickbake.maps.sidecar import PACKED_CHANNELS as CHANNELS
 
 
 def parse_channel_spec(spec: str) -> tuple[str, str | None]:
@@ -99,24 +98,4 @@ def pack_channels(path: str | os.PathLike, stored: dict[str, np.ndarray], bits: 
     return encode_png(samples, linear=True), {"bits": depth, "existed": existed, "size": [width, height]}
 
 
-def merged_sidecar(path: str | os.PathLike, entries: dict[str, dict], bits: int) -> dict:
-    """The packed image's sidecar: earlier channel entries kept, the written ones replaced."""
-    from thickbake.maps.sidecar import sidecar_path
-    from thickbake.version import __version__
-
-    path = Path(path)
-    channels = {}
-    side = sidecar_path(path)
-    if side.is_file():
-        try:
-            old = json.loads(side.read_text())
-            if isinstance(old, dict) and old.get("image") == path.name and isinstance(old.get("channels"), dict):
-                channels.update(old["channels"])
-        except (OSError, ValueError):
-            pass
-    channels.update(entries)
-    return {"thickbake_version": __version__, "image": path.name, "color_space": "linear", "bits": bits,
-            "channels": {k: channels[k] for k in CHANNELS if k in channels}}
-
-
-__all__ = ["pack_channels", "parse_channel_spec", "merged_sidecar", "CHANNELS"]
+__all__ = ["pack_channels", "parse_channel_spec", "CHANNELS"]

@@ -28,10 +28,18 @@ texels), ``input`` {``file``, ``sha256``}, ``settings`` (map content), ``setting
   ``maps`` (every map file of the asset) and ``outputs`` (delivery file name → sha256, when there are
   any): what :mod:`thickbake.batch.plan` needs to tell whether the maps are up to date (it finds an
   asset's sidecars with :func:`read_batch_sidecar`);
+* ``packed_into`` (a bake with ``--pack-into``): {``image``, ``channels`` {channel: measure}, ``bits``,
+  ``existed``}, from :func:`packed_record`;
 * ``map_sha256``: sha256 of the map file's bytes, added by :func:`with_map_checksum` when the pair is
   written.  The map is renamed into place before its sidecar, so a run killed between the two
   renames leaves a new map beside the old sidecar; readers (:meth:`Sidecar.check_map`) refuse such a
   pair instead of decoding the new map with the old numbers.
+
+A packed RGBA image (``IMAGE.png`` holding several maps, one per channel) has ``IMAGE.json`` of another
+shape, built by :func:`packed_sidecar`: ``thickbake_version``, ``image`` (its file name),
+``color_space``, ``bits`` and ``channels`` {``r`` | ``g`` | ``b`` | ``a``: :func:`channel_entry`, i.e.
+``measure``, ``units``, ``reach``, ``inverted``, ``input``, ``settings_hash`` and ``encoding``
+{``code_max``, ``offset``, ``scale``, ``formula``}}.
 """
 
 from __future__ import annotations
@@ -55,6 +63,8 @@ SIDECAR_SUFFIX = ".json"
 SIDECAR_MAX_BYTES = 16 * 1024**2
 #: The integer code ranges a PNG map may have, by bit depth, and the image type each is stored in.
 CODE_MAX = {8: 255, 16: 65535}
+#: The channels of a packed image, in the order its sidecar lists them.
+PACKED_CHANNELS = "rgba"
 _CODE_DTYPE = {255: np.uint8, 65535: np.uint16}
 
 
@@ -169,6 +179,75 @@ def with_map_checksum(sidecar: dict, map_bytes: bytes) -> dict:
 def with_batch_record(sidecar: dict, record: dict, map_bytes: bytes) -> dict:
     """The sidecar with a batch's bookkeeping (``record`` plus the sha256 of the map's bytes)."""
     return {**sidecar, "batch": dict(record, map_sha256=hashlib.sha256(map_bytes).hexdigest())}
+
+
+def channel_entry(measure: str | Measure, units: str, reach: float, invert: bool, source: dict, settings_hash: str,
+                  bits: int) -> dict:
+    """The entry of one channel of a packed image (``channels.r`` …): what the channel holds and how to decode it.
+
+    Parameters
+    ----------
+    measure, reach, invert
+        The settings of the map packed there (reach in scene units).
+    units : str
+        The measure's units as the map's own sidecar gives them (``info["units"]``).
+    source : dict
+        The map's ``input`` entry ({``file``, ``sha256``}).
+    settings_hash : str
+        The map's ``settings_hash``.
+    bits : {8, 16}
+        The packed image's bit depth (an existing image keeps its own).
+    """
+    encoding = encoding_entry(".png", measure, reach, invert, bits)
+    del encoding["format"]  # the packed image's format is said once, by its own ``bits``
+    return {"measure": measure_named(measure).name, "units": units, "reach": reach, "inverted": invert,
+            "input": source, "settings_hash": settings_hash, "encoding": encoding}
+
+
+def packed_sidecar(image: str | os.PathLike, entries: dict[str, dict], bits: int, version: str,
+                   keep_earlier: bool = True) -> dict:
+    """The sidecar of a packed RGBA image: one :func:`channel_entry` per channel, in r, g, b, a order.
+
+    Parameters
+    ----------
+    image : str or os.PathLike
+        The packed PNG; its sidecar (:func:`sidecar_path`) is read for the earlier entries.
+    entries : {channel: dict}
+        The channels written now.
+    bits : {8, 16}
+        The image's bit depth.
+    version : str
+        The thickbake version that packed it.
+    keep_earlier : bool
+        Keep the entries of channels not written now from the image's existing sidecar, when that
+        sidecar describes this image (an unreadable one is ignored: the image is being rewritten).
+    """
+    image = Path(image)
+    channels = dict(_earlier_channels(image)) if keep_earlier else {}
+    channels.update(entries)
+    return {"thickbake_version": version, "image": image.name, "color_space": "linear", "bits": bits,
+            "channels": {k: channels[k] for k in PACKED_CHANNELS if k in channels}}
+
+
+def packed_record(image: str | os.PathLike, channels: list[tuple[str, str]], bits: int, existed: bool) -> dict:
+    """The ``packed_into`` entry of a map's own sidecar: which image, which (channel, measure) pairs,
+    the image's bit depth and whether it existed before."""
+    return {"image": Path(image).name, "channels": {c: m for c, m in channels}, "bits": bits, "existed": existed}
+
+
+def _earlier_channels(image: Path) -> dict:
+    """The ``channels`` of the existing sidecar of a packed ``image`` ({} when there is none, it is
+    unreadable or it describes another image)."""
+    side = sidecar_path(image)
+    if not side.is_file():
+        return {}
+    try:
+        old = load_sidecar_json(side)
+    except ThickbakeError:
+        return {}
+    if isinstance(old, dict) and old.get("image") == image.name and isinstance(old.get("channels"), dict):
+        return old["channels"]
+    return {}
 
 
 # ---------------------------------------------------------------------------- reading
@@ -434,5 +513,5 @@ def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeErro
 
 
 __all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint", "with_error_map",
-           "with_batch_record", "with_map_checksum", "Encoding", "BatchRecord", "batch_record", "Sidecar", "read_sidecar", "parse_sidecar",
-           "read_batch_sidecar", "described_map"]
+           "with_batch_record", "with_map_checksum", "channel_entry", "packed_sidecar", "packed_record", "Encoding",
+           "BatchRecord", "batch_record", "Sidecar", "read_sidecar", "parse_sidecar", "read_batch_sidecar", "described_map"]

@@ -87,25 +87,18 @@ def packed_outputs(image: str | os.PathLike, channels, results: dict, bits: int,
     bits : bit depth of a new image
     fresh : start from a new image even if ``image`` exists (batch outputs are rebuilt whole)
     """
-    from thickbake.maps.encode import decode_coefficients
-    from thickbake.maps.packing import merged_sidecar, pack_channels
+    from thickbake.maps.packing import pack_channels
+    from thickbake.maps.sidecar import channel_entry, packed_record, packed_sidecar
+    from thickbake.version import __version__
 
     data, facts = pack_channels(image, {c: results[m].stored() for c, m in channels}, bits, fresh=fresh)
-    top = (1 << facts["bits"]) - 1
     entries = {}
     for channel, measure in channels:
         r = results[measure]
-        offset, scale = decode_coefficients(measure, r.settings.reach, r.settings.invert)
-        entries[channel] = {"measure": measure, "units": r.info["units"], "reach": r.settings.reach,
-                            "inverted": r.settings.invert, "input": r.info["input"],
-                            "settings_hash": r.info["settings_hash"],
-                            "encoding": {"code_max": top, "offset": offset, "scale": scale,
-                                         "formula": f"{measure} = {offset:g} + {scale:g} * code / {top}"}}
-    sidecar = merged_sidecar(image, {} if fresh else entries, facts["bits"])
-    if fresh:
-        sidecar["channels"] = {c: entries[c] for c in "rgba" if c in entries}
-    record = {"image": Path(image).name, "channels": {c: m for c, m in channels}, "bits": facts["bits"],
-              "existed": facts["existed"]}
+        entries[channel] = channel_entry(measure, r.info["units"], r.settings.reach, r.settings.invert,
+                                         r.info["input"], r.info["settings_hash"], facts["bits"])
+    sidecar = packed_sidecar(image, entries, facts["bits"], __version__, keep_earlier=not fresh)
+    record = packed_record(image, channels, facts["bits"], facts["existed"])
     return data, sidecar, record
 
 
