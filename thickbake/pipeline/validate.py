@@ -223,6 +223,22 @@ _PLY_TYPES = {"char": 1, "int8": 1, "uchar": 1, "uint8": 1, "short": 2, "int16":
               "int": 4, "int32": 4, "uint": 4, "uint32": 4, "float": 4, "float32": 4, "double": 8, "float64": 8}
 
 
+def _ply_header_element(words: list[str], elements: list[list]) -> None:
+    """Add a PLY header ``element`` line to ``elements`` ([name, count, fixed bytes, list-count bytes]) or
+    a ``property`` line's bytes to the last element; raises ValueError/IndexError on a malformed line."""
+    if words[0] == "element":
+        count = int(words[2])
+        if count < 0:
+            raise ValueError
+        elements.append([words[1], count, 0, 0])
+    elif words[0] == "property":
+        is_list = words[1] == "list"
+        types = [words[2], words[3]] if is_list else [words[1]]
+        if not elements or any(t not in _PLY_TYPES for t in types):
+            raise ValueError
+        elements[-1][3 if is_list else 2] += _PLY_TYPES[types[0]]
+
+
 def check_ply(data: bytes, where) -> None:
     """Check a PLY header and that the file can hold the element counts it announces."""
     if not data.startswith(b"ply") or data[3:4] not in (b"\n", b"\r"):
@@ -246,22 +262,8 @@ def check_ply(data: bytes, where) -> None:
         try:
             if words[0] == "format":
                 fmt = words[1]
-            elif words[0] == "element":
-                count = int(words[2])
-                if count < 0:
-                    raise ValueError
-                elements.append([words[1], count, 0, 0])
-            elif words[0] == "property":
-                if not elements:
-                    raise ValueError
-                if words[1] == "list":
-                    if words[2] not in _PLY_TYPES or words[3] not in _PLY_TYPES:
-                        raise ValueError
-                    elements[-1][3] += _PLY_TYPES[words[2]]
-                else:
-                    if words[1] not in _PLY_TYPES:
-                        raise ValueError
-                    elements[-1][2] += _PLY_TYPES[words[1]]
+            else:
+                _ply_header_element(words, elements)
         except (ValueError, IndexError):
             raise ThickbakeError(f"PLY header line {number} is not valid ({line.strip()[:60]!r})", path=where,
                                  fix=_REEXPORT) from None
