@@ -77,4 +77,56 @@ def expand_ranges(count: np.ndarray) -> np.ndarray:
     return np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
 
 
-__all__ = ["triangle_cross", "double_areas", "unit_normals", "uv_areas", "pixel_bounds", "expand_ranges"]
+def unique_rows(rows: np.ndarray, *, return_index: bool = False, return_inverse: bool = False,
+                return_counts: bool = False):
+    """``np.unique(rows, axis=0, ...)`` for (n, k) integer rows, through one int64 key per row.
+
+    numpy sorts rows as opaque byte strings, about four times slower than sorting int64 keys.  Each
+    column is offset to start at 0 (or, when the columns' ranges multiplied would not fit in 62 bits,
+    replaced by its rank among the column's distinct values, which keeps the order) and the columns
+    are combined in mixed radix, first column most significant: the keys sort exactly as the rows do
+    lexicographically, so every output equals numpy's, in the same order.  Rows whose ranked columns
+    still overflow go to ``np.unique`` itself.
+
+    Returns the unique (u, k) rows, then (u,) first indices, (n,) inverse and (u,) counts as asked.
+
+    >>> unique_rows(np.array([[2, 1], [0, 5], [2, 1]]), return_counts=True)
+    (array([[0, 5],
+           [2, 1]]), array([1, 2]))
+    """
+    rows = np.asarray(rows)
+    keys = _row_keys(rows)
+    if keys is None:
+        return np.unique(rows, axis=0, return_index=return_index, return_inverse=return_inverse,
+                         return_counts=return_counts)
+    _, first, inverse, counts = np.unique(keys, return_index=True, return_inverse=True, return_counts=True)
+    out = [rows[first]]
+    if return_index:
+        out.append(first)
+    if return_inverse:
+        out.append(inverse.reshape(-1))
+    if return_counts:
+        out.append(counts)
+    return out[0] if len(out) == 1 else tuple(out)
+
+
+def _row_keys(rows: np.ndarray) -> np.ndarray | None:
+    """(n,) int64 keys ordered as the (n, k) integer rows are lexicographically, or None if none fit."""
+    if rows.ndim != 2 or not np.issubdtype(rows.dtype, np.integer) or len(rows) == 0:
+        return None
+    columns = [c.astype(np.int64) - int(c.min()) for c in rows.T]
+    spans = [int(c.max()) + 1 for c in columns]
+    if np.prod(np.array(spans, dtype=float)) >= 2.0 ** 62:
+        columns = [np.unique(c, return_inverse=True)[1].reshape(-1) for c in columns]
+        spans = [int(c.max()) + 1 for c in columns]
+        if np.prod(np.array(spans, dtype=float)) >= 2.0 ** 62:
+            return None
+    key = np.zeros(len(rows), np.int64)
+    for column, span in zip(columns, spans):
+        key *= span
+        key += column
+    return key
+
+
+__all__ = ["triangle_cross", "double_areas", "unit_normals", "uv_areas", "pixel_bounds", "expand_ranges",
+           "unique_rows"]

@@ -42,7 +42,7 @@ from thickbake.errors import ThickbakeError
 from thickbake.inputs import check_regular_file, iter_regular_file, read_regular_file
 from thickbake.pipeline.validate import check_glb, check_gltf, check_gltf_document, check_obj, check_ply, confined_resolver
 from thickbake.pipeline.readers import Material, Part, ReadResult, apply_transform, read_gltf, read_obj, transform_scale
-from thickbake.geometry import double_areas, expand_ranges, triangle_cross, unit_normals, uv_areas
+from thickbake.geometry import double_areas, expand_ranges, triangle_cross, unique_rows, unit_normals, uv_areas
 
 MESH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply", ".off", ".stl")
 #: Corners whose faces meet at more than this angle keep separate normals when the file carries none.
@@ -562,7 +562,7 @@ def _welded(triangles: np.ndarray, lo: np.ndarray, diagonal: float) -> tuple[np.
     flat = triangles.reshape(-1, 3)
     tol = diagonal * MERGE_TOLERANCE_FRACTION
     keys = np.round((flat - lo) / tol).astype(np.int64)
-    _, first, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
+    _, first, inverse = unique_rows(keys, return_index=True, return_inverse=True)
     return flat[first], inverse.reshape(-1, 3).astype(np.int64)
 
 
@@ -625,7 +625,7 @@ def _topology(vertices: np.ndarray, faces: np.ndarray) -> _Topology:
     """Open edges (used once), edges shared by more than two faces and winding consistency of (f, 3)
     int64 faces over (m, 3) float64 vertices."""
     edges = np.sort(faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    unique_edges, edge_counts = np.unique(edges, axis=0, return_counts=True)
+    unique_edges, edge_counts = unique_rows(edges, return_counts=True)
     boundary = unique_edges[edge_counts == 1]
     non_manifold = int((edge_counts > 2).sum())
     boundary_length = float(np.linalg.norm(vertices[boundary[:, 0]] - vertices[boundary[:, 1]], axis=1).sum())
@@ -719,7 +719,7 @@ def signed_volume(vertices: np.ndarray, faces: np.ndarray) -> float:
 def _winding_consistent(faces: np.ndarray) -> bool:
     """True when no directed edge is used twice (two neighbours traversing it the same way)."""
     directed = faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
-    _, counts = np.unique(directed, axis=0, return_counts=True)
+    _, counts = unique_rows(directed, return_counts=True)
     return bool((counts == 1).all())
 
 

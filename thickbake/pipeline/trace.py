@@ -17,6 +17,8 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
+from thickbake.geometry import unique_rows
+
 
 @runtime_checkable
 class RayEngine(Protocol):
@@ -326,11 +328,8 @@ def closed_surface(faces: np.ndarray) -> bool:
     if len(faces) == 0:
         return False
     edges = np.sort(faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    # one int64 key per undirected edge (vertex indices are far below 2³¹), sorted: a run of equal
-    # keys is one edge's faces; closed means every run has length 2
-    keys = np.sort(edges[:, 0] * (int(faces.max()) + 1) + edges[:, 1])
-    starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1], True])
-    return bool((np.diff(starts) == 2).all())
+    _, counts = unique_rows(edges, return_counts=True)
+    return bool((counts == 2).all())
 
 
 def make_engine(vertices: np.ndarray, faces: np.ndarray, backend: str = "auto", *,

@@ -37,6 +37,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from thickbake.geometry import unique_rows
+
 from thickbake.constants import SEARCH_DIAGONAL_FRACTION
 from thickbake.errors import ThickbakeError
 from thickbake.pipeline.load import Asset, load_asset
@@ -151,7 +153,7 @@ def cage_triangles(target: Asset, cage) -> np.ndarray:
     if cage.report.orientation_flipped != target.report.orientation_flipped:
         # the loader reversed the corners of one of them (an inside-out file): undo it so corners pair
         triangles, faces = triangles[:, ::-1], faces[:, ::-1]
-    pairs = np.unique(np.stack([target.trace_faces.ravel(), faces.ravel()], axis=1), axis=0)
+    pairs = unique_rows(np.stack([target.trace_faces.ravel(), faces.ravel()], axis=1))
     if not (len(pairs) == len(np.unique(pairs[:, 0])) == len(np.unique(pairs[:, 1]))):
         raise ThickbakeError("the cage's triangles do not share vertices as the target's do (different topology)",
                              path=where, fix="make the cage from a copy of the target, moving vertices only")
