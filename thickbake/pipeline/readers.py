@@ -432,10 +432,9 @@ def _parse_obj_bulk(data: bytes, stem: str):
     continuations, relative or zero indices, mixed corner forms (``v/t`` beside ``v//n``), short
     ``v``/``vt``/``vn`` lines, unparsable numbers or very long lines."""
     data = data.replace(b"\r\n", b"\n").replace(b"\t", b" ")
-    byte_counts = np.bincount(np.frombuffer(data, np.uint8), minlength=256)
-    if byte_counts[list(_OTHER_LINE_BREAKS)].any() or b"\\\n" in data:
+    if any(bytes([c]) in data for c in _OTHER_LINE_BREAKS) or b"\\\n" in data:
         return None
-    if (byte_counts[0xC2] or byte_counts[0xE2]) and any(c in data for c in _OTHER_LINE_BREAKS_UTF8):
+    if any(c in data for c in _OTHER_LINE_BREAKS_UTF8):
         return None
     lines = data.split(b"\n")
     first = np.array(lines, dtype="S3")
@@ -446,7 +445,7 @@ def _parse_obj_bulk(data: bytes, stem: str):
         return None
     comment = head1 == b"#"
     every = np.array(lines, dtype=object)
-    if byte_counts[ord("#")] != sum(line.count(b"#") for line in every[comment]):
+    if data.count(b"#") != sum(line.count(b"#") for line in every[comment]):
         return None      # a comment after a statement
     head2 = first.astype("S2")
     labels = (head2 == b"o ") | (first == b"o") | (head2 == b"g ") | (first == b"g") | (first == b"use")
