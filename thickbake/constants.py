@@ -69,3 +69,12 @@ FLOAT32_ULPS = 8
 #: One float32 ulp relative to the value (2⁻²⁴: half the spacing at 1, the unit round-off of a
 #: 24-bit significand).
 FLOAT32_EPS = 2.0 ** -24
+#: Leak guard (pipeline.trace): hits closer than this many float32 ulps (2⁻²³ relative) of the scene's
+#: largest absolute coordinate to an edge of their triangle are re-traced in the robust scene.  Both
+#: Embree's fast edge tests and the plane arithmetic work in float32 on coordinates of that size,
+#: each with errors of a few ulps; 64 leaves an order of magnitude of room.
+EDGE_MARGIN_ULPS = 64
+#: A ray still travelling after the bounding-box diagonal plus this share of it has left the mesh
+#: (pipeline.driver counts it as an escape): no chord of a solid inside its box is longer than the
+#: diagonal; the margin absorbs round-off.
+ESCAPE_MARGIN = 1e-3

@@ -161,6 +161,11 @@ def gltf_hint(reach: float, local_units: dict | None) -> dict:
     return hint
 
 
+def with_exr_sample_type(sidecar: dict, sample_type: str) -> dict:
+    """Record an EXR map's sample type (``"half"`` or ``"float"``) in its ``encoding`` entry."""
+    return {**sidecar, "encoding": {**sidecar["encoding"], "sample_type": sample_type}}
+
+
 def with_error_map(sidecar: dict, error_map: str | os.PathLike) -> dict:
     """The sidecar naming the standard-error TIFF written beside the map."""
     return {**sidecar, "error_map": Path(error_map).name}

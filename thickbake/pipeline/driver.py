@@ -23,6 +23,7 @@ import numpy as np
 from thickbake.version import __version__
 from thickbake.pipeline.directions import ray_directions, rays_per_sample as traced_rays, replicate_count, sample_keys, variates
 from thickbake.maps.encode import normalise, quantise
+from thickbake.constants import ESCAPE_MARGIN
 from thickbake.errors import ThickbakeError
 from thickbake.measures import measure_named
 from thickbake.pipeline.measures import Moments, block_labels, moderated_stderr_map, moderated_variance, prior_dof, texel_reduce
@@ -30,7 +31,7 @@ from thickbake.pipeline.load import Asset, load_asset
 from thickbake.pipeline.finish import fit_reach, medium_record, medium_scale
 from thickbake.maps.files import check_output_path, write_map
 from thickbake.maps.padding import pad_map
-from thickbake.maps.sidecar import build_sidecar, with_error_map, with_unprojected_mask
+from thickbake.maps.sidecar import build_sidecar, with_error_map, with_exr_sample_type, with_unprojected_mask
 from thickbake.pipeline.trace import RayEngine
 from thickbake.settings import BakeSettings, RunOptions, check_memory, split_options
 from thickbake.pipeline.blockers import build_engines
@@ -166,7 +167,7 @@ class BakeResult:
         if suffix == ".exr":
             from thickbake.maps.exr import exr_bytes, sidecar_attributes
 
-            sidecar["encoding"]["sample_type"] = exr_type
+            sidecar = with_exr_sample_type(sidecar, exr_type)
             return exr_bytes(image, sidecar_attributes(sidecar), exr_type), sidecar
         return image_bytes(image, suffix), sidecar
 
@@ -559,9 +560,6 @@ def transfer_warnings(info: dict) -> list[str]:
     return out
 
 
-#: A ray still travelling after the bounding-box diagonal plus this share of it has left the mesh:
-#: no chord of a solid inside its box is longer than the diagonal; the margin absorbs round-off.
-ESCAPE_MARGIN = 1e-3
 #: Above these shares a bake says something is off (judgement calls, no published source): most rays
 #: leaving the mesh means it has no inside (a single-sided card or an open sheet); a tenth of the
 #: texels claimed twice means stacked islands or several UV sets sharing one map.

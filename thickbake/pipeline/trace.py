@@ -17,6 +17,7 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
+from thickbake.constants import EDGE_MARGIN_ULPS
 from thickbake.geometry import unique_rows
 
 
@@ -61,11 +62,6 @@ class RayEngine(Protocol):
 
 #: Scene modes of :class:`EmbreeEngine`.
 EMBREE_MODES = ("guarded", "robust", "fast")
-#: Hits closer than this many float32 ulps (2⁻²³ relative) of the scene's largest absolute coordinate
-#: to an edge of their triangle are re-traced robustly.  Both Embree's fast edge tests and our own
-#: plane arithmetic work in float32 on coordinates of that size, each with errors of a few ulps;
-#: 64 leaves an order of magnitude of room.
-EDGE_MARGIN_ULPS = 64
 
 
 def _face_table(vertices: np.ndarray, faces: np.ndarray):
@@ -129,7 +125,7 @@ class EmbreeEngine:
     the same triangle.  They can disagree without a leak only where a ray passes within round-off of
     an edge (two triangles both "hit"), so a third rule re-traces those too:
 
-    * a hit whose point lies within :data:`EDGE_MARGIN_ULPS` float32 ulps of the scene's largest
+    * a hit whose point lies within :data:`~thickbake.constants.EDGE_MARGIN_ULPS` float32 ulps of the scene's largest
       coordinate of its triangle's nearest edge (scaled by 1/|d·n|, since a grazing ray's hit point is
       less certain): about 0.1–1% of a bake's rays.
 
