@@ -42,15 +42,17 @@ Coverage factors
 ----------------
 σ̂ is the bake's standard-error map: per texel, the spread of R = 4 independent randomised-QMC
 replicates (:mod:`thickbake.pipeline.measures`), an honest estimate of the error of the estimator
-actually used, with only R − 1 = 3 degrees of freedom per texel.
+actually used, with only R − 1 = 3 degrees of freedom per texel, moderated with its 4×4-texel block
+(σ̃, on d₀ᵢ + 3 degrees of freedom, ``BakeResult.stderr_dof``;
+:func:`thickbake.pipeline.measures.moderated_stderr_map`).
 
 * Every texel: |error| ≤ systematic + k·σ_pool, σ_pool the RMS of σ̂ over the compared texels (the
   sphere's texels see one integrand by symmetry, so they share one σ; n·(R − 1) degrees of freedom)
   and k the Student-t quantile for those dof at two-sided level α/n (Bonferroni over n texels,
   family-wise false alarm α = 10⁻³).  A per-texel t with 3 dof would need k ≈ 500 at 65,536 texels.
-* 95% of texels: |error| ≤ systematic + t_{0.975, R−1}·σ̂ (3.18σ̂ at R = 4), the calibrated band; all
-  but 5% + :data:`CALIBRATION_SLACK` + 4 binomial standard deviations sqrt(0.05·0.95/n) of the texels
-  must lie inside it.
+* 95% of texels: |error| ≤ systematic + t_{0.975, d₀ᵢ+3}·σ̃ (2.01σ̃ at 48 dof, up to 3.18σ̃ at 3), the
+  calibrated band; all but 5% + :data:`CALIBRATION_SLACK` + 4 binomial standard deviations
+  sqrt(0.05·0.95/n) of the texels must lie inside it.
 * The Cauchy mean over the map: 4σ of the area-weighted mean (two-sided normal tail 6·10⁻⁵ per row,
   below 10⁻³ family-wise over the at most 16 rows of a run); the sum over many texels pools their
   degrees of freedom.

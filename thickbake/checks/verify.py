@@ -11,7 +11,7 @@ Values are compared as stored: the 16-bit (or 8-bit) codes are decoded back to m
 Checks, one table row each:
 
 * **per texel, sphere** — any cone, lobe and measure: at every covered texel the closed form of
-  :mod:`thickbake.tolerance` (sphere seen through a cone of half-angle α, reach clipping included):
+  :mod:`thickbake.checks.error_budget` (sphere seen through a cone of half-angle α, reach clipping included):
 
   - thickness, cosine lobe: 4R(1 − c³) / (3 sin²α), uniform lobe: R(1 + c), c = cos α;
   - transmittance (τ = 2R/L): cosine 2e^(−τc)[c·g₁(τ(1−c)) + (1−c)·g₂(τ(1−c))] / (1 + c),
@@ -34,11 +34,11 @@ Checks, one table row each:
   the *geometric* normal, so this row bakes a flat-shaded copy of the shape (each triangle's own
   normal as the lobe axis); smooth shading would tilt the lobe by up to half a facet angle.
 
-Tolerances (all derived, see :mod:`thickbake.tolerance`):
+Tolerances (all derived, see :mod:`thickbake.checks.error_budget`):
 
 * per texel, every texel: |error| ≤ systematic + k·σ_pool, σ_pool the RMS over the compared texels of
-  the bake's standard-error map (replicate standard errors, :mod:`thickbake.measures`; the sphere's
-  texels share one σ by symmetry), k the Student-t quantile for n·(R − 1) degrees of freedom at
+  the bake's standard-error map (moderated replicate standard errors, :mod:`thickbake.pipeline.measures`;
+  the sphere's texels share one σ by symmetry), k the Student-t quantile for n·(R − 1) degrees of freedom at
   two-sided level 10⁻³/n (Bonferroni over the n texels): about 5.7σ_pool at 65,536 texels;
 * per texel, 95% of texels: |error| ≤ systematic + t·σ̃ (each texel's calibrated 95% band: Student-t on
   the moderated standard error's own degrees of freedom, ``BakeResult.stderr_dof`` — 2.01σ̃ at 48 dof

@@ -691,8 +691,8 @@ def _record_projection(ctx: _Context, texel: np.ndarray, found: np.ndarray, offs
 def _trace_samples(ctx: _Context, engine: RayEngine, index: np.ndarray, keys: np.ndarray, origins: np.ndarray,
                    sample_bias: np.ndarray, inward: np.ndarray, axis: np.ndarray, moments: Moments,
                    tally: dict, texel: np.ndarray) -> None:
-    """Trace the rays of some samples against one engine in engine-sized calls (batches of doubling
-    size when adaptive) and add their values to ``moments``.
+    """Trace the rays of some samples against one engine in engine-sized calls (batches along the
+    ladder of :func:`_ray_schedule` when adaptive) and add their values to ``moments``.
 
     Parameters
     ----------
