@@ -317,7 +317,7 @@ def bake_maps(mesh, settings: BakeSettings | None = None, run: RunOptions | None
     >>> from thickbake.checks import shapes
     >>> maps = thickbake.bake_maps(shapes.sphere(radius=1.0).mesh, size=32, rays=4)
     >>> [(m.key.material, m.key.uv_set, m.key.tile) for m in maps]
-    [('grey', 0, None)]
+    [('sphere', 0, None)]
     """
     start = time.perf_counter()
     settings, run = _with_options(settings, run, options)
