@@ -121,17 +121,25 @@ def test_interrupt_is_exit_130(assets, tmp_path, monkeypatch, capsys):
     assert "interrupted" in capsys.readouterr().err and list(tmp_path.iterdir()) == []
 
 
-def test_malformed_sidecar_is_bad_input(assets, tmp_path):
-    # a sidecar whose code_max is not a number is the user's file, not a bug: exit 2, one line naming the
-    # sidecar and the field
+@pytest.mark.parametrize("change, field", [
+    (lambda d: d["encoding"].update(code_max="abc"), "encoding.code_max"),
+    (lambda d: d.update(map_of={"material": None, "uv_set": 0, "tile": "1001"}), "map_of.tile"),
+])
+def test_malformed_sidecar_is_the_same_bad_input_line_for_every_reader(assets, tmp_path, change, field):
+    # a malformed sidecar field is the user's file, not a bug: exit 2, and compare and preview (both
+    # reading through the sidecar module) print the same one line naming the sidecar and the field
     side = json.loads((assets / "a.json").read_text())
-    side["encoding"]["code_max"] = "abc"
+    change(side)
     shutil.copy(assets / "a.png", tmp_path / "bad.png")
     (tmp_path / "bad.json").write_text(json.dumps(side))
-    proc = run("compare", tmp_path / "bad.png", assets / "a.png")
-    assert proc.returncode == 2
-    line = one_line_error(proc.stderr)
-    assert "bad.json" in line and "code_max" in line
+    lines = []
+    for argv in (["compare", tmp_path / "bad.png", assets / "a.png"],
+                 ["preview", assets / "box.obj", tmp_path / "bad.png", "-o", tmp_path / "view.html"]):
+        proc = run(*argv)
+        assert proc.returncode == 2, proc.stderr
+        lines.append(one_line_error(proc.stderr))
+    assert lines[0] == lines[1] and "bad.json" in lines[0] and f"sidecar's {field} is" in lines[0]
+    assert not (tmp_path / "view.html").exists()
 
 
 # ---------------------------------------------------------------------------- common flags

@@ -11,7 +11,7 @@ import thickbake
 from thickbake.checks import shapes
 from thickbake.errors import ThickbakeError
 from thickbake.maps.files import read_image
-from thickbake.maps.sidecar import parse_sidecar, read_sidecar
+from thickbake.maps.sidecar import Encoding, parse_sidecar, read_sidecar
 
 
 @pytest.fixture(scope="module")
@@ -71,3 +71,61 @@ def test_packed_sidecar_keeps_earlier_channels_of_the_same_image_only(box_bake, 
     assert list(packed_sidecar(image, {"r": entry}, 8, "v")["channels"]) == ["r"]
     sidecar_path(image).write_text("{not json")
     assert list(packed_sidecar(image, {"r": entry}, 8, "v")["channels"]) == ["r"]
+
+
+def test_reader_view_gives_back_what_the_bake_wrote(box_bake, tmp_path):
+    # map_of, units and the decode come back typed from the sidecar written beside the map
+    path = box_bake.write(tmp_path / "m.png")
+    side = read_sidecar(path)
+    assert side.map_of is not None and side.map_of.to_dict() == box_bake.info["map_of"]
+    assert side.units == box_bake.info["units"] and side.medium is None
+    assert side.encoding == Encoding.of(".png", "thickness", box_bake.settings.reach, False, box_bake.settings.bits)
+
+
+@pytest.mark.parametrize("change, field", [
+    (lambda d: d.update(map_of="tile 1001"), "map_of"),
+    (lambda d: d.update(map_of={"material": True, "uv_set": 0, "tile": None}), "map_of.material"),
+    (lambda d: d.update(map_of={"material": None, "uv_set": -1, "tile": None}), "map_of.uv_set"),
+    (lambda d: d.update(map_of={"material": None, "uv_set": 0, "tile": 7}), "map_of.tile"),
+    (lambda d: d.update(medium={"sigma_tr_per_mm": [1.0, "x", 2.0], "mm_per_unit": 1.0}), "medium.sigma_tr_per_mm"),
+    (lambda d: d.update(medium={"sigma_tr_per_mm": [1.0, 1.0, 2.0], "mm_per_unit": 0}), "medium.mm_per_unit"),
+])
+def test_bad_reader_fields_are_named_like_the_decode_fields(box_bake, change, field):
+    data = json.loads(json.dumps(box_bake.sidecar("m.png")))
+    change(data)
+    with pytest.raises(ThickbakeError) as err:
+        parse_sidecar(data, "m.json")
+    message = str(err.value)
+    assert message.startswith(f"m.json: the sidecar's {field} is ") and "\n" not in message
+    # the same fix as a bad encoding field
+    data = json.loads(json.dumps(box_bake.sidecar("m.png")))
+    data["encoding"]["scale"] = "abc"
+    with pytest.raises(ThickbakeError) as other:
+        parse_sidecar(data, "m.json")
+    assert message.split("; ", 1)[1] == str(other.value).split("; ", 1)[1]
+
+
+def test_packed_channel_fields_are_named_like_a_maps(box_bake):
+    from thickbake.maps.sidecar import channel_entry, parse_any_sidecar, parse_packed_sidecar
+
+    s = box_bake.settings
+    entry = channel_entry("occlusion", "unitless", s.reach, True, {"file": "box.obj"}, "h", 16)
+    data = {"image": "p.png", "bits": 16, "channels": {"b": entry, "x": "not a channel"}}
+    packed = parse_any_sidecar(data, "p.json")
+    assert list(packed.channels) == ["b"] and packed.image == "p.png"
+    b = packed.channels["b"]
+    assert b.measure.name == "occlusion" and b.inverted
+    assert b.encoding == Encoding.of(".png", "occlusion", s.reach, True, 16)
+    # a bad channel field reads as the same line as the map's own field, with the channel's path
+    single = json.loads(json.dumps(box_bake.sidecar("p.png")))
+    single["encoding"]["code_max"] = "abc"
+    with pytest.raises(ThickbakeError) as map_error:
+        parse_sidecar(single, "p.json")
+    bad = json.loads(json.dumps(data))
+    bad["channels"]["b"]["encoding"]["code_max"] = "abc"
+    with pytest.raises(ThickbakeError) as channel_error:
+        parse_packed_sidecar(bad, "p.json")
+    assert str(channel_error.value) == str(map_error.value).replace("encoding.code_max", "channels.b.encoding.code_max")
+    bad["channels"]["b"] = 3
+    with pytest.raises(ThickbakeError, match=r"sidecar's channels\.b is 3"):
+        parse_packed_sidecar(bad, "p.json")

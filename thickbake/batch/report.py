@@ -193,8 +193,11 @@ def _report_row(job) -> dict:
 
 def _map_row(item: dict) -> dict:
     """One map of an asset in ``report.json``: where it is, what it holds, its figures and warnings."""
+    from thickbake.maps.sidecar import read_map_of
+
     data = item["data"]
-    return {"map": item["map"], "sidecar": item["sidecar"], "map_of": data.get("map_of"),
+    map_of = read_map_of(data, item["sidecar"])  # checked already: written by this batch or parsed to skip
+    return {"map": item["map"], "sidecar": item["sidecar"], "map_of": map_of and map_of.to_dict(),
             "coverage": data.get("coverage"), "stats": data.get("stats"), "size": data.get("size"),
             "measure": data.get("measure"), "seconds": data.get("seconds"), "rays_traced": data.get("rays_traced"),
             "rays_per_second": data.get("rays_per_second"), "escape_fraction": data.get("escape_fraction"),

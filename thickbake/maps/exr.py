@@ -12,16 +12,14 @@ Uses the OpenEXR package (the Academy Software Foundation's Python binding) thro
 
 from __future__ import annotations
 
-import json
 import os
 import tempfile
 
 import numpy as np
 
+from thickbake.maps.sidecar import decode_attributes
+
 PIXEL_TYPES = ("float", "half")
-#: Sidecar fields copied into the header: what decoding needs, nothing that changes from run to run.
-DECODE_KEYS = ("measure", "units", "encoding", "reach", "inverted", "color_space", "medium", "settings_hash",
-               "input", "size")
 
 
 def exr_bytes(array: np.ndarray, attributes: dict | None = None, pixel_type: str = "float") -> bytes:
@@ -76,12 +74,9 @@ def read_exr(path: str | os.PathLike) -> tuple[np.ndarray, dict]:
 
 
 def sidecar_attributes(sidecar: dict) -> dict:
-    """The header attributes that carry a sidecar's decode information."""
-    return {"thickbake_measure": str(sidecar.get("measure")), "thickbake_units": str(sidecar.get("units")),
-            "thickbake_formula": str(sidecar.get("encoding", {}).get("formula")),
-            "thickbake_reach": float(sidecar.get("reach") or 0.0), "thickbake_color_space": "linear",
-            "thickbake_decode": json.dumps({k: sidecar[k] for k in DECODE_KEYS if k in sidecar},
-                                           sort_keys=True, allow_nan=False)}
+    """The header attributes that carry a sidecar's decode information
+    (:func:`thickbake.maps.sidecar.decode_attributes`)."""
+    return decode_attributes(sidecar)
 
 
 __all__ = ["exr_bytes", "read_exr", "sidecar_attributes", "PIXEL_TYPES"]

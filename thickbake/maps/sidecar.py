@@ -2,8 +2,10 @@
 
 Every map ``OUT.png`` / ``OUT.tif`` has ``OUT.json`` beside it.  This module builds that dict from a
 bake's figures (:func:`build_sidecar`, plus :func:`with_error_map` and :func:`with_batch_record` for
-the optional parts) and reads it back into a typed, validated :class:`Sidecar`
-(:func:`read_sidecar`); nothing else in the package writes or parses sidecar fields.
+the optional parts) and reads it back into a typed, validated :class:`Sidecar` (:func:`read_sidecar`:
+the decode, ``map_of``, ``medium``, ...) or, for a packed image, :class:`PackedSidecar`
+(:func:`parse_any_sidecar`); nothing else in the package writes or parses sidecar fields, and a bad
+field reads as the same one-line error wherever it is read.
 
 Schema (the keys this module gives meaning to; the rest are the bake's figures, see README)
 ------------------------------------------------------------------------------------------
@@ -342,6 +344,102 @@ def batch_record(data: Any) -> BatchRecord | None:
 
 
 @dataclass(frozen=True)
+class MapOf:
+    """The ``map_of`` entry: which part of the asset a map holds.
+
+    Attributes
+    ----------
+    material : str, int or None
+        The material's name, its index in the file when unnamed, None for faces without a material.
+    uv_set : int
+        UV channel (0 when the entry gives none).
+    tile : int or None
+        UDIM tile (1001 …), None for the 0–1 square.
+    """
+
+    material: str | int | None
+    uv_set: int
+    tile: int | None
+
+    def to_dict(self) -> dict:
+        """The entry as the sidecar stores it."""
+        return {"material": self.material, "uv_set": self.uv_set, "tile": self.tile}
+
+
+def read_map_of(data: dict, path: str | os.PathLike) -> MapOf | None:
+    """The ``map_of`` entry of sidecar content, or None when it has none (a map of the whole asset).
+
+    Raises
+    ------
+    ThickbakeError
+        A field has the wrong type, named as :func:`parse_sidecar` names every bad field.
+    """
+    path = Path(path)
+    entry = data.get("map_of")
+    if entry is None:
+        return None
+    if not isinstance(entry, dict):
+        raise _bad_field(path, "map_of", entry, "an object with material, uv_set and tile")
+    material = entry.get("material")
+    if material is not None and (isinstance(material, bool) or not isinstance(material, (str, int))):
+        raise _bad_field(path, "map_of.material", material, "a material name, a material index or null")
+    uv_set = entry.get("uv_set")
+    if uv_set is None:
+        uv_set = 0
+    elif isinstance(uv_set, bool) or not isinstance(uv_set, int) or uv_set < 0:
+        raise _bad_field(path, "map_of.uv_set", uv_set, "a UV set number (0, 1, ...)")
+    tile = entry.get("tile")
+    if tile is not None and (isinstance(tile, bool) or not isinstance(tile, int) or tile < 1001):
+        raise _bad_field(path, "map_of.tile", tile, "a UDIM tile number (1001 ...) or null")
+    return MapOf(material, uv_set, tile)
+
+
+@dataclass(frozen=True)
+class MediumRecord:
+    """What a reader needs of the ``medium`` entry of a bake through a measured medium.
+
+    Attributes
+    ----------
+    sigma_tr_per_mm : tuple of float
+        Transport coefficient per millimetre, per colour channel (R, G, B).
+    mm_per_unit : float
+        Millimetres per scene unit.
+    """
+
+    sigma_tr_per_mm: tuple[float, ...]
+    mm_per_unit: float
+
+    @property
+    def sigma_per_unit(self) -> list[float]:
+        """Transport coefficient per scene unit, per colour channel (at most three)."""
+        return [s * self.mm_per_unit for s in self.sigma_tr_per_mm][:3]
+
+
+def read_medium(data: dict, path: str | os.PathLike) -> MediumRecord | None:
+    """The ``medium`` entry of sidecar content, or None for a bake without a medium.
+
+    Raises
+    ------
+    ThickbakeError
+        A field a reader needs is missing or has the wrong type (named as :func:`parse_sidecar` does).
+    """
+    path = Path(path)
+    entry = data.get("medium")
+    if entry is None:
+        return None
+    if not isinstance(entry, dict):
+        raise _bad_field(path, "medium", entry, "an object (the measured medium of the bake)")
+    sigma = entry.get("sigma_tr_per_mm")
+    if not isinstance(sigma, list) or not sigma:
+        raise _bad_field(path, "medium.sigma_tr_per_mm", sigma, "a list of finite numbers per mm (R, G, B)")
+    sigma = tuple(_number(v, path, "medium.sigma_tr_per_mm") for v in sigma)
+    mm_per_unit = _number(entry.get("mm_per_unit"), path, "medium.mm_per_unit")
+    if not mm_per_unit > 0:
+        raise _bad_field(path, "medium.mm_per_unit", mm_per_unit, "a positive number of millimetres")
+    return MediumRecord(sigma, mm_per_unit)
+
+
+@dataclass(frozen=True)
 class Sidecar:
     """A validated sidecar.
 
@@ -364,6 +462,13 @@ class Sidecar:
     batch : BatchRecord or None
     map_sha256 : str or None
         sha256 of the map file the sidecar was written with (None in sidecars older than the field).
+    units : str or None
+        The measure's units as the bake wrote them.
+    map_of : MapOf or None
+        The part of the asset the map holds; None for a sidecar without ``map_of`` (the whole asset on
+        UV set 0).
+    medium : MediumRecord or None
+        The measured medium of a medium bake.
     data : dict
         Everything, as read (the bake's figures for reports).
     """
@@ -379,6 +484,9 @@ class Sidecar:
     batch: BatchRecord | None
     data: dict
     map_sha256: str | None = None
+    units: str | None = None
+    map_of: MapOf | None = None
+    medium: MediumRecord | None = None
 
     def check_map(self, map_path: str | os.PathLike) -> None:
         """Refuse a map whose bytes are not the ones this sidecar was written with.
@@ -463,30 +571,148 @@ def parse_sidecar(data: Any, path: str | os.PathLike) -> Sidecar:
     path = Path(path)
     if not isinstance(data, dict):
         raise ThickbakeError("the sidecar is not a JSON object", path=path, fix="bake the map again")
-    measure = data.get("measure")
-    if measure not in MEASURES:
-        raise _bad_field(path, "measure", measure, " or ".join(repr(m) for m in MEASURES))
-    encoding = data.get("encoding")
-    if not isinstance(encoding, dict):
+    measure = _measure(data, path, "")
+    if not isinstance(data.get("encoding"), dict):
         raise ThickbakeError("the sidecar has no encoding", path=path, fix="use a map written by 'thickbake bake'")
-    code_max = encoding.get("code_max")
-    if code_max is not None and (isinstance(code_max, bool) or code_max not in _CODE_DTYPE):
-        raise _bad_field(path, "encoding.code_max", code_max, "255 or 65535 (a PNG) or null (a float TIFF)")
-    offset = _number(encoding.get("offset"), path, "encoding.offset")
-    scale = _number(encoding.get("scale"), path, "encoding.scale")
-    reach = data.get("reach")
-    if reach is not None:
-        reach = _number(reach, path, "reach")
-        if not reach > 0:
-            raise _bad_field(path, "reach", reach, "a positive length in scene units")
+    encoding = _encoding(data["encoding"], path, "encoding")
+    reach = _reach(data, path, "")
     coverage = data.get("coverage")
     coverage = None if coverage is None else _number(coverage, path, "coverage")
     source = data.get("input") if isinstance(data.get("input"), dict) else {}
-    return Sidecar(path=path, measure=measure_named(measure), reach=reach,
-                   encoding=Encoding(None if code_max is None else int(code_max), offset, scale),
-                   coverage=coverage, version=_text(data.get("thickbake_version")), map_name=_text(data.get("map")),
+    return Sidecar(path=path, measure=measure, reach=reach, encoding=encoding, coverage=coverage,
+                   version=_text(data.get("thickbake_version")), map_name=_text(data.get("map")),
                    input_sha256=_text(source.get("sha256")), batch=batch_record(data), data=data,
-                   map_sha256=_text(data.get("map_sha256")))
+                   map_sha256=_text(data.get("map_sha256")), units=_text(data.get("units")),
+                   map_of=read_map_of(data, path), medium=read_medium(data, path))
+
+
+@dataclass(frozen=True)
+class Channel:
+    """One channel of a packed image (its sidecar's ``channels.r`` …, see :func:`channel_entry`).
+
+    Attributes
+    ----------
+    measure : Measure
+    units : str or None
+    reach : float or None
+        Scene units.
+    inverted : bool
+    encoding : Encoding
+        The channel's codes (the packed image's bit depth).
+    """
+
+    measure: Measure
+    units: str | None
+    reach: float | None
+    inverted: bool
+    encoding: Encoding
+
+
+@dataclass(frozen=True)
+class PackedSidecar:
+    """A validated sidecar of a packed RGBA image (:func:`packed_sidecar`).
+
+    Attributes
+    ----------
+    path : Path
+        The ``.json`` file.
+    image : str or None
+        File name of the packed image.
+    channels : {str: Channel}
+        The channels it describes (``r``, ``g``, ``b``, ``a``), in the sidecar's order.
+    data : dict
+        Everything, as read.
+    """
+
+    path: Path
+    image: str | None
+    channels: dict[str, Channel]
+    data: dict
+
+
+def is_packed(data: Any) -> bool:
+    """Whether sidecar content (any JSON value) describes a packed image (it has a ``channels`` block)."""
+    return isinstance(data, dict) and isinstance(data.get("channels"), dict)
+
+
+def parse_packed_sidecar(data: Any, path: str | os.PathLike) -> PackedSidecar:
+    """Validate the sidecar of a packed image; ``path`` names the file in errors.
+
+    Entries under other names than r, g, b, a are left out.
+
+    Raises
+    ------
+    ThickbakeError
+        A channel's field a reader needs is missing or has the wrong type, named like
+        ``channels.r.encoding.offset`` (as :func:`parse_sidecar` names every bad field).
+    """
+    path = Path(path)
+    if not is_packed(data):
+        raise _bad_field(path, "channels", data.get("channels") if isinstance(data, dict) else None,
+                         "an object with one entry per channel (r, g, b, a)")
+    channels = {}
+    for name, entry in data["channels"].items():
+        if name not in PACKED_CHANNELS:
+            continue
+        where = f"channels.{name}"
+        if not isinstance(entry, dict):
+            raise _bad_field(path, where, entry, "an object (what the channel holds and how to decode it)")
+        if not isinstance(entry.get("encoding"), dict):
+            raise _bad_field(path, f"{where}.encoding", entry.get("encoding"),
+                             "an object with code_max, offset and scale")
+        channels[name] = Channel(measure=_measure(entry, path, f"{where}."), units=_text(entry.get("units")),
+                                 reach=_reach(entry, path, f"{where}."), inverted=entry.get("inverted") is True,
+                                 encoding=_encoding(entry["encoding"], path, f"{where}.encoding"))
+    return PackedSidecar(path=path, image=_text(data.get("image")), channels=channels, data=data)
+
+
+def parse_any_sidecar(data: Any, path: str | os.PathLike) -> Sidecar | PackedSidecar:
+    """Validate a map's sidecar (:func:`parse_sidecar`) or a packed image's (:func:`parse_packed_sidecar`)."""
+    return parse_packed_sidecar(data, path) if is_packed(data) else parse_sidecar(data, path)
+
+
+def _measure(entry: dict, path: Path, prefix: str) -> Measure:
+    measure = entry.get("measure")
+    if measure not in MEASURES:
+        raise _bad_field(path, f"{prefix}measure", measure, " or ".join(repr(m) for m in MEASURES))
+    return measure_named(measure)
+
+
+def _reach(entry: dict, path: Path, prefix: str) -> float | None:
+    reach = entry.get("reach")
+    if reach is not None:
+        reach = _number(reach, path, f"{prefix}reach")
+        if not reach > 0:
+            raise _bad_field(path, f"{prefix}reach", reach, "a positive length in scene units")
+    return reach
+
+
+def _encoding(entry: dict, path: Path, where: str) -> Encoding:
+    """The :class:`Encoding` of an ``encoding`` object found at ``where`` (a field name for errors)."""
+    code_max = entry.get("code_max")
+    if code_max is not None and (isinstance(code_max, bool) or code_max not in _CODE_DTYPE):
+        raise _bad_field(path, f"{where}.code_max", code_max, "255 or 65535 (a PNG) or null (a float TIFF)")
+    offset = _number(entry.get("offset"), path, f"{where}.offset")
+    scale = _number(entry.get("scale"), path, f"{where}.scale")
+    return Encoding(None if code_max is None else int(code_max), offset, scale)
+
+
+#: The fields that decode a map and nothing that changes from run to run (no timings, so the same bake
+#: gives the same bytes): what a map file that carries its own decode information copies.
+DECODE_KEYS = ("measure", "units", "encoding", "reach", "inverted", "color_space", "medium", "settings_hash",
+               "input", "size")
+
+
+def decode_attributes(sidecar: dict) -> dict:
+    """A sidecar's decode information as flat header attributes (str or float) for a map file that
+    carries its own (an EXR, :func:`thickbake.maps.exr.sidecar_attributes`): ``thickbake_measure``,
+    ``thickbake_units``, ``thickbake_formula``, ``thickbake_reach``, ``thickbake_color_space`` and
+    ``thickbake_decode`` (the :data:`DECODE_KEYS` fields as sorted JSON)."""
+    return {"thickbake_measure": str(sidecar.get("measure")), "thickbake_units": str(sidecar.get("units")),
+            "thickbake_formula": str(sidecar.get("encoding", {}).get("formula")),
+            "thickbake_reach": float(sidecar.get("reach") or 0.0), "thickbake_color_space": "linear",
+            "thickbake_decode": json.dumps({k: sidecar[k] for k in DECODE_KEYS if k in sidecar},
+                                           sort_keys=True, allow_nan=False)}
 
 
 def described_map(sidecar_file: str | os.PathLike) -> str | None:
@@ -517,6 +743,9 @@ def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeErro
                           fix="keep the sidecar 'thickbake bake' wrote beside the map, or bake the map again")
 
 
-__all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint", "with_error_map",
-           "with_batch_record", "with_map_checksum", "channel_entry", "packed_sidecar", "packed_record", "Encoding",
-           "BatchRecord", "batch_record", "Sidecar", "read_sidecar", "parse_sidecar", "read_batch_sidecar", "described_map"]
+__all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint",
+           "with_error_map", "with_batch_record", "with_map_checksum", "channel_entry", "packed_sidecar",
+           "packed_record", "Encoding", "BatchRecord", "batch_record", "MapOf", "read_map_of", "MediumRecord",
+           "read_medium", "Sidecar", "read_sidecar", "parse_sidecar", "Channel", "PackedSidecar", "is_packed",
+           "parse_packed_sidecar", "parse_any_sidecar", "read_batch_sidecar", "DECODE_KEYS", "decode_attributes",
+           "described_map"]

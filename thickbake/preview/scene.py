@@ -24,6 +24,8 @@ from pathlib import Path
 import numpy as np
 
 from thickbake.errors import ThickbakeError
+from thickbake.maps.sidecar import (Encoding, MapOf, MediumRecord, PackedSidecar, Sidecar, load_sidecar_json,
+                                    parse_any_sidecar, sidecar_path)
 
 MAP_SUFFIXES = (".png", ".tif", ".tiff", ".exr")
 #: Measures whose value is already the share of light that passes (1 = thin).
@@ -90,14 +92,12 @@ class MapEntry:
         return np.asarray(self.offset) + np.asarray(self.scale) * stored
 
 
-def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, dict]:
-    """A MAP or SIDECAR argument → (image path, sidecar dict).
+def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, Sidecar | PackedSidecar]:
+    """A MAP or SIDECAR argument → (image path, its validated sidecar).
 
-    A map's sidecar is validated by :func:`thickbake.maps.sidecar.parse_sidecar`; a packed image's
-    sidecar (a ``channels`` block, one decode per channel) is checked channel by channel later.
+    A map's sidecar is read by :func:`thickbake.maps.sidecar.parse_sidecar`, a packed image's (a
+    ``channels`` block, one decode per channel) by :func:`thickbake.maps.sidecar.parse_packed_sidecar`.
     """
-    from thickbake.maps.sidecar import load_sidecar_json, parse_sidecar, sidecar_path
-
     path = Path(arg)
     if not path.exists():
         raise ThickbakeError("no such file", path=path, fix="check the path")
@@ -108,15 +108,11 @@ def resolve_map_argument(arg: str | os.PathLike) -> tuple[Path, dict]:
     else:
         raise ThickbakeError(f"{path.suffix or '(no suffix)'} is not a map", path=path,
                              fix="give maps (.png, .tif, .exr) or their .json sidecars after the asset")
-    side = load_sidecar_json(side_file)
-    if not isinstance(side, dict):
-        raise ThickbakeError("the sidecar is not a JSON object", path=side_file, fix="give a sidecar written by thickbake")
-    if not isinstance(side.get("channels"), dict):
-        side = parse_sidecar(side, side_file).data
+    side = parse_any_sidecar(load_sidecar_json(side_file), side_file)
     if path.suffix.lower() != ".json":
         return path, side
-    name = side.get("map") or side.get("image")
-    if not isinstance(name, str):
+    name = side.image if isinstance(side, PackedSidecar) else side.map_name
+    if not name:
         raise ThickbakeError("the sidecar names no map image", path=path, fix="give the map itself")
     image = path.parent / name
     if not image.exists():
@@ -143,86 +139,68 @@ def _read_pixels(path: Path) -> np.ndarray:
     return image
 
 
-def _channel_decode(enc: dict, where: Path) -> tuple[float, float, float | None]:
-    try:
-        offset = float(enc["offset"])
-        scale = float(enc["scale"])
-        code_max = enc.get("code_max")
-        code_max = None if code_max is None else float(code_max)
-    except (KeyError, TypeError, ValueError):
-        raise ThickbakeError("the sidecar's encoding lacks offset or scale", path=where, fix="bake the map again") from None
-    return offset, scale, code_max
-
-
 def entries_of(arg: str | os.PathLike) -> list[MapEntry]:
     """The entries one MAP or SIDECAR argument gives (several for a packed image)."""
-    from thickbake.maps.sidecar import sidecar_path
-
     image_path, side = resolve_map_argument(arg)
-    where = sidecar_path(image_path)
     pixels = _read_pixels(image_path)
-    entries = []
-    if isinstance(side.get("channels"), dict):
-        for channel, info in side["channels"].items():
-            if channel not in CHANNEL_INDEX or CHANNEL_INDEX[channel] >= pixels.shape[2] or not isinstance(info, dict):
-                continue
-            enc = info.get("encoding", info)
-            entries.append(_entry(image_path, f"{image_path.name} ({channel})", pixels[..., CHANNEL_INDEX[channel]][..., None],
-                                  info, enc, where))
+    if isinstance(side, PackedSidecar):
+        entries = [_entry(image_path, f"{image_path.name} ({name})", pixels[..., CHANNEL_INDEX[name]][..., None],
+                          channel.measure.name, channel.units, channel.encoding)
+                   for name, channel in side.channels.items() if CHANNEL_INDEX[name] < pixels.shape[2]]
         if not entries:
-            raise ThickbakeError("the packed image's sidecar describes no channel it holds", path=where,
+            raise ThickbakeError("the packed image's sidecar describes no channel it holds", path=side.path,
                                  fix="give the image written by --pack-into with its sidecar")
         return entries
-    if not isinstance(side.get("encoding"), dict) or side.get("measure") is None:
-        raise ThickbakeError("the sidecar has no encoding or measure", path=where, fix="give maps written by 'thickbake bake'")
     if pixels.shape[2] == 4:
         pixels = pixels[..., :3]
     elif pixels.shape[2] == 2:
         pixels = pixels[..., :1]
-    return [_entry(image_path, image_path.name, pixels, side, side["encoding"], where)]
+    return [_entry(image_path, image_path.name, pixels, side.measure.name, side.units, side.encoding,
+                   side.medium, side.map_of)]
 
 
-def _entry(image_path: Path, label: str, pixels: np.ndarray, side: dict, enc: dict, where: Path) -> MapEntry:
-    offset, scale, code_max = _channel_decode(enc, where)
+def _entry(image_path: Path, label: str, pixels: np.ndarray, measure: str, units: str | None, encoding: Encoding,
+           medium: MediumRecord | None = None, map_of: MapOf | None = None) -> MapEntry:
+    """The entry of a map (or a packed image's channel) as its sidecar describes it; ``map_of`` None is the
+    whole asset on UV set 0."""
+    code_max = _checked_code_max(image_path, pixels, encoding)
     channels = pixels.shape[2]
-    if code_max is None:
-        if pixels.dtype.kind != "f":
-            raise ThickbakeError(f"the sidecar describes a float map but the image holds {pixels.dtype} codes",
-                                 path=image_path, fix="keep each map with the sidecar written beside it")
-        code_max = 1.0
-    elif pixels.dtype.kind == "f":
-        raise ThickbakeError("the sidecar describes integer codes but the image holds floats", path=image_path,
-                             fix="keep each map with the sidecar written beside it")
-    elif code_max < float(pixels.max(initial=0)):
-        raise ThickbakeError(f"the image holds codes above the sidecar's code_max {code_max:g}", path=image_path,
-                             fix="keep each map with the sidecar written beside it")
-    measure = str(side.get("measure") or enc.get("measure") or "thickness")
     kind = "transmission" if measure in TRANSMISSION_MEASURES else "thickness"
-    medium = side.get("medium") if isinstance(side.get("medium"), dict) else None
     sigma = None
     if medium and channels == 3:
         kind = "transmission"  # a medium bake stores RGB transmittance exp(-sigma_tr * d) per channel
-    elif kind == "thickness" and medium and medium.get("sigma_tr_per_mm") and medium.get("mm_per_unit"):
+    elif kind == "thickness" and medium:
         # grey thickness with the medium recorded: the shader applies exp(-sigma_tr * mm_per_unit * d)
-        sigma = [float(s) * float(medium["mm_per_unit"]) for s in medium["sigma_tr_per_mm"]][:3]
-    map_of = side.get("map_of") if isinstance(side.get("map_of"), dict) else None
-    has_map_of = map_of is not None
-    map_of = map_of or {}
-    tile = map_of.get("tile")
-    material = map_of.get("material")
-    uv_set = int(map_of.get("uv_set") or 0)
-    if material is not None or tile is not None or uv_set:
-        parts = [f"material {material}" if material is not None else None, f"UV {uv_set}" if uv_set else None,
-                 f"tile {tile}" if tile is not None else None]
+        sigma = medium.sigma_per_unit
+    of = map_of or MapOf(None, 0, None)
+    if of.material is not None or of.tile is not None or of.uv_set:
+        parts = [f"material {of.material}" if of.material is not None else None,
+                 f"UV {of.uv_set}" if of.uv_set else None, f"tile {of.tile}" if of.tile is not None else None]
         label += " — " + ", ".join(p for p in parts if p)
-    entry = MapEntry(label=label, path=image_path, stored=pixels, code_max=float(code_max),
-                     offset=[offset] * channels, scale=[scale] * channels, kind=kind, measure=measure,
-                     sigma_per_unit=sigma, uv_set=uv_set, material=material,
-                     tile=None if tile is None else int(tile), show_range=(0.0, 1.0),
-                     units=str(side.get("units") or ("scene units" if kind == "thickness" else "unitless")),
-                     map_of_given=has_map_of)
+    entry = MapEntry(label=label, path=image_path, stored=pixels, code_max=code_max,
+                     offset=[encoding.offset] * channels, scale=[encoding.scale] * channels, kind=kind,
+                     measure=measure, sigma_per_unit=sigma, uv_set=of.uv_set, material=of.material, tile=of.tile,
+                     show_range=(0.0, 1.0), units=units or ("scene units" if kind == "thickness" else "unitless"),
+                     map_of_given=map_of is not None)
     entry.show_range = _show_range(entry)
     return entry
+
+
+def _checked_code_max(image_path: Path, pixels: np.ndarray, encoding: Encoding) -> float:
+    """The stored value that means 1 (1 for a float image), after checking the image matches the encoding."""
+    if encoding.code_max is None:
+        if pixels.dtype.kind != "f":
+            raise ThickbakeError(f"the sidecar describes a float map but the image holds {pixels.dtype} codes",
+                                 path=image_path, fix="keep each map with the sidecar written beside it")
+        return 1.0
+    code_max = float(encoding.code_max)
+    if pixels.dtype.kind == "f":
+        raise ThickbakeError("the sidecar describes integer codes but the image holds floats", path=image_path,
+                             fix="keep each map with the sidecar written beside it")
+    if code_max < float(pixels.max(initial=0)):
+        raise ThickbakeError(f"the image holds codes above the sidecar's code_max {code_max:g}", path=image_path,
+                             fix="keep each map with the sidecar written beside it")
+    return code_max
 
 
 def _show_range(entry: MapEntry) -> tuple[float, float]:
