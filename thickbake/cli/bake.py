@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+from dataclasses import dataclass
 from pathlib import Path
 
 from thickbake.cli.options import add_bake_options, add_transfer_options, settings_from_args, transfer_from_args
@@ -60,14 +61,24 @@ def add_parser(sub, common) -> None:
     p.set_defaults(func=run)
 
 
+@dataclass
+class _BakePlan:
+    """Everything ``bake`` decided before tracing: the settings, the asset and where each output goes."""
+
+    settings: object
+    run_options: object
+    transfer: dict
+    channels: list[tuple[str, str]]
+    asset: object
+    groups: list
+    outputs: list | None  # one map path per group; None with --pack-into alone
+    errors: list
+    masks: list
+    volume_plan: object = None
+
+
 def run(args) -> int:
     from thickbake.errors import ThickbakeError
-    from thickbake.maps.files import check_output_path
-    from thickbake.maps.naming import output_paths
-    from thickbake.pipeline.driver import bake_maps
-    from thickbake.pipeline.groups import map_groups
-    from thickbake.pipeline.load import load_asset
-    from thickbake.cli.progress import ProgressBar
 
     if args.medium is not None and args.medium.lower() == "list":
         from thickbake.media import preset_table
@@ -77,6 +88,25 @@ def run(args) -> int:
         return EXIT_OK
     if args.mesh is None:
         raise ThickbakeError("no mesh given", fix="thickbake bake MESH [options]; see 'thickbake bake --help'")
+    plan = _resolve(args)
+    # in a transfer the target is not traced: its holes and winding do not matter, its UVs do
+    warned = [w for w in plan.asset.report.warnings if not plan.transfer or "UV" in w]
+    print_warnings(warned, args.mesh)
+    baked = _bake(args, plan)
+    written = _write_outputs(args, plan, baked)
+    warned += _print_results(args, plan, baked, written)
+    if args.strict and warned:
+        strict_failure(len(warned))
+        return EXIT_FAILED
+    return EXIT_OK
+
+
+def _resolve(args) -> _BakePlan:
+    """Check the options and the asset and name every output, refusing bad input before any bake."""
+    from thickbake.errors import ThickbakeError
+    from thickbake.pipeline.groups import map_groups
+    from thickbake.pipeline.load import load_asset
+
     settings, run_options = settings_from_args(args)
     transfer = transfer_from_args(args)
     channels = _channel_plan(args, settings)
@@ -87,6 +117,31 @@ def run(args) -> int:
             raise ThickbakeError(f"{flag} goes with a map output", fix="give -o OUT as well")
     asset = load_asset(args.mesh)
     groups, _ = map_groups(asset, settings.uv_set)
+    plan = _BakePlan(settings, run_options, transfer, channels, asset, groups, *_output_paths(args, settings, groups))
+    if args.pack_into and len(groups) > 1:
+        raise ThickbakeError(f"--pack-into packs one map, and the asset makes {len(groups)} (one per material, UV set "
+                             "and tile)", path=args.mesh, fix="bake the maps into files with -o, then pack them")
+    if args.write_gltf:
+        from thickbake.pipeline.deliver import check_volume_request
+
+        if any(g.key.tile is not None for g in groups):
+            raise ThickbakeError("the UV layout spans UDIM tiles, which glTF textures cannot address", path=args.mesh,
+                                 fix="keep the UVs in the 0-1 square for --write-gltf, or bake without it")
+        plan.volume_plan = check_volume_request(args.mesh, args.write_gltf, settings, uv_set=settings.uv_set,
+                                                transmission=args.gltf_transmission)
+    if args.pack_into:
+        from thickbake.maps.packing import load_target
+
+        load_target(args.pack_into, settings.bits)  # an unreadable target is refused before baking
+    return plan
+
+
+def _output_paths(args, settings, groups) -> tuple[list | None, list, list]:
+    """(maps, error maps, unprojected masks): one path (or None) per group, each checked as an output."""
+    from thickbake.errors import ThickbakeError
+    from thickbake.maps.files import check_output_path
+    from thickbake.maps.naming import output_paths
+
     keys = [dict(g.key.to_dict(), material_index=g.key.material_index) for g in groups]
     outputs = None if (args.output is None and args.pack_into) else \
         output_paths(args.output, args.mesh, settings.measure, keys)
@@ -100,60 +155,64 @@ def run(args) -> int:
         if settings.medium and out.suffix.lower() in (".tif", ".tiff"):
             raise ThickbakeError("an RGB transmittance map cannot be a float TIFF", path=out,
                                  fix="name it .png or .exr")
-    if args.pack_into and len(groups) > 1:
-        raise ThickbakeError(f"--pack-into packs one map, and the asset makes {len(groups)} (one per material, UV set "
-                             "and tile)", path=args.mesh, fix="bake the maps into files with -o, then pack them")
-    volume_plan = None
-    if args.write_gltf:
-        from thickbake.pipeline.deliver import check_volume_request
+    return outputs, errors, masks
 
-        if any(g.key.tile is not None for g in groups):
-            raise ThickbakeError("the UV layout spans UDIM tiles, which glTF textures cannot address", path=args.mesh,
-                                 fix="keep the UVs in the 0-1 square for --write-gltf, or bake without it")
-        volume_plan = check_volume_request(args.mesh, args.write_gltf, settings, uv_set=settings.uv_set,
-                                           transmission=args.gltf_transmission)
-    if args.pack_into:
-        from thickbake.maps.packing import load_target
 
-        load_target(args.pack_into, settings.bits)  # an unreadable target is refused before baking
+def _bake(args, plan: _BakePlan) -> dict:
+    """{measure: [BakeResult per group]}: the bake's own measure, then each other measure a channel asks for."""
+    from thickbake.cli.progress import ProgressBar
     from thickbake.pipeline.deliver import settings_for_measure
+    from thickbake.pipeline.driver import bake_maps
 
-    # in a transfer the target is not traced: its holes and winding do not matter, its UVs do
-    warned = [w for w in asset.report.warnings if not transfer or "UV" in w]
-    print_warnings(warned, args.mesh)
+    transfer = plan.transfer
     if transfer:
         from thickbake.pipeline.transfer import load_source
 
         transfer["source"] = load_source(transfer["source"])  # once, for every measure baked
     baked = {}
-    for measure in dict.fromkeys([settings.measure] + [m for _, m in channels]):
-        bar = ProgressBar(f"baking {os.path.basename(args.mesh)}" + (f" ({measure})" if len(channels) > 1 else ""),
-                          enabled=False if args.quiet else None)
+    for measure in dict.fromkeys([plan.settings.measure] + [m for _, m in plan.channels]):
+        label = f"baking {os.path.basename(args.mesh)}" + (f" ({measure})" if len(plan.channels) > 1 else "")
+        bar = ProgressBar(label, enabled=False if args.quiet else None)
         try:
-            baked[measure] = bake_maps(asset, settings_for_measure(settings, measure), run_options, progress=bar,
-                                       **transfer)
+            baked[measure] = bake_maps(plan.asset, settings_for_measure(plan.settings, measure), plan.run_options,
+                                       progress=bar, **transfer)
         finally:
             bar.close()
+    return baked
+
+
+def _write_outputs(args, plan: _BakePlan, baked: dict) -> list[list]:
+    """Write the glTF copy, the packed image and the maps; returns the files written for each map."""
+    settings = plan.settings
     results = baked[settings.measure]
     written = [[] for _ in results]
-    if volume_plan is not None:
+    if plan.volume_plan is not None:
         from thickbake.pipeline.deliver import write_gltf_copy
 
         maps = ([(results[0], None, settings.uv_set)] if len(results) == 1 else
                 [(r, [r.key.material_index], settings.uv_set) for r in results if r.key.material_index is not None])
-        report = write_gltf_copy(args.mesh, args.write_gltf, volume_plan, maps, args.gltf_transmission)
+        report = write_gltf_copy(args.mesh, args.write_gltf, plan.volume_plan, maps, args.gltf_transmission)
         print_warnings(report.pop("warnings"), args.write_gltf)
         for r in results:
             r.info["gltf"] = report
         written[0].append(args.write_gltf)
     if args.pack_into:
-        results[0].info["packed_into"] = _pack(args.pack_into, channels, {m: rs[0] for m, rs in baked.items()},
+        results[0].info["packed_into"] = _pack(args.pack_into, plan.channels, {m: rs[0] for m, rs in baked.items()},
                                                settings.bits)
         written[0].append(args.pack_into)
     for i, result in enumerate(results):
-        if outputs is not None:
-            result.write(outputs[i], error_out=errors[i], exr_type=args.exr_type, unprojected_out=masks[i])
-            written[i].insert(0, outputs[i])
+        if plan.outputs is not None:
+            result.write(plan.outputs[i], error_out=plan.errors[i], exr_type=args.exr_type,
+                         unprojected_out=plan.masks[i])
+            written[i].insert(0, plan.outputs[i])
+    return written
+
+
+def _print_results(args, plan: _BakePlan, baked: dict, written: list[list]) -> list[str]:
+    """Print each map's warnings and summary line (and with -v the settings and timings); returns the
+    warnings printed."""
+    results = baked[plan.settings.measure]
+    warned = []
     for i, result in enumerate(results):
         where = args.mesh if len(results) == 1 else f"{args.mesh} ({_key_label(result)})"
         for other in baked.values():
@@ -167,10 +226,7 @@ def run(args) -> int:
                       + [f"timing: {_key_label(r) + ': ' if len(results) > 1 else ''}setup "
                          f"{r.info['timing']['setup_seconds']:.3f} s, trace {r.info['timing']['trace_seconds']:.3f} s, "
                          f"total {r.info['seconds']:.3f} s on engine {r.info['engine']}" for r in results])
-    if args.strict and warned:
-        strict_failure(len(warned))
-        return EXIT_FAILED
-    return EXIT_OK
+    return warned
 
 
 def _key_label(result) -> str:
