@@ -72,12 +72,13 @@ def default_pad(width: int, height: int) -> int:
 def estimate_bytes(width: int, height: int, chunk_rays: int) -> int:
     """Rough peak memory of a bake in bytes.
 
-    Per texel the bake holds the float32 map, standard-error and area maps, ray counts, coverage
-    claims, and for padding and encoding a float64 copy and the distance transform's indices: ~64
-    bytes (a 4096² bake measured 1,021 MB peak, 61 bytes a texel, with scripts/bench.py).  Per ray
-    in flight, origins, directions and distances in float32 plus float64 temporaries: ~80 bytes.
+    Per texel the bake holds the float32 map, standard-error, degrees-of-freedom and area maps, ray
+    counts, coverage claims, the error moderation's block sums, and for padding and encoding a float64
+    copy and the distance transform's indices: ~72 bytes (a 4096² bake measured 1,106 MB peak, 69
+    bytes a texel, with ``bench_memory`` of scripts/bench.py).  Per ray in flight, origins, directions
+    and distances in float32 plus float64 temporaries: ~80 bytes.
     """
-    return int(width) * int(height) * 64 + int(chunk_rays) * 80
+    return int(width) * int(height) * 72 + int(chunk_rays) * 80
 
 
 def parse_size(text: str | int | tuple | list) -> tuple[int, int]:
