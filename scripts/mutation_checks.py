@@ -195,12 +195,12 @@ MUTATIONS = (
              "vec3 measure = uHasMap ? uOffset + uScale * storedValue() : vec3(0.0);",
              "vec3 measure = uHasMap ? storedValue() : vec3(0.0);",
              ("tests/test_preview.py::test_the_shader_trusts_the_sidecar_an_inverted_claim_flips_the_order",)),
-    Mutation("preview-term-distortion-sign",
-             "the back-light vector is L − N·distortion instead of the published L + N·distortion",
+    Mutation("preview-lobe-direction-sign",
+             "the Henyey-Greenstein lobe is centred on the light's direction (dot(V, L)) instead of its path",
              "thickbake/preview/viewer.js",
-             "vec3 ltLight = L + N * uDistortion;",
-             "vec3 ltLight = L - N * uDistortion;",
-             ("tests/test_preview.py::test_distortion_power_scale_and_ambient_act_as_published",)),
+             "float mu = dot(V, -L);",
+             "float mu = dot(V, L);",
+             ("tests/test_preview.py::test_forward_scattering_and_strength_act_as_henyey_greenstein",)),
 )
 
 

@@ -7,16 +7,15 @@ E[cosθ] = 2/3 under the cosine lobe; REFERENCES.md, "Sphere, one surface point"
 holds one value, d = 4R/3.
 
 The still is taken with the camera on +z and the light straight behind (L = −z, towards the light),
-with the term set to distortion 0, power 1, scale 1, ambient 0 and no fill light.  The page's shader
-is then (Barré-Brisebois & Bouchard, GDC 2011, as viewer.js writes it)
+with the back-light lobe flat (g = 0), strength 1 and no fill light.  The page's shader (viewer.js:
+the Henyey–Greenstein lobe, Henyey & Greenstein, ApJ 93:70, 1941, is 1 for every direction at g = 0)
+is then
 
-    colour = albedo · (max(N·L, 0) + (dot(V, −L)^1 · 1 + 0) · exp(−d / A))
+    colour = albedo · (max(N·L, 0) + 1 · exp(−d / A))
 
-Every visible point faces the camera, so N·L ≤ 0 and the front term vanishes; dot(V, −L) is the
-cosine between the eye ray and the axis, the same at the two spheres' mirror-image pixels (the
-spheres sit at x = ±X, so their discs are mirror images about the image centre).  So the ratio of the
-linear brightness of the two discs is exp((d_thick − d_thin) / A), whatever the albedo and the view
-factor, and their difference is at least albedo · cos(α_max) · (exp(−d_thin/A) − exp(−d_thick/A)).
+Every visible point faces the camera, so N·L ≤ 0 and the front term vanishes.  So the ratio of the
+linear brightness of the two discs is exp((d_thick − d_thin) / A), whatever the albedo, and their
+difference is albedo · (exp(−d_thin/A) − exp(−d_thick/A)).
 
 Tolerances, derived:
 * 8-bit sRGB output: one code is at most 1/255 · d(linear)/d(sRGB) ≤ 1/255 · 2.4 · 1.055⁻¹ ·
@@ -50,7 +49,7 @@ ATTENUATION = 0.15    # scene units; exp(−d/A) = 0.49 (thin) and 0.12 (thick):
 RAYS = 32
 SEGMENTS = 48
 SIZE = 96
-TERM = "distortion=0&power=1&scale=1&ambient=0&fill=0&az=0&el=0"
+TERM = "forward=0&strength=1&fill=0&az=0&el=0"
 
 
 def _chromium_or_skip():
@@ -343,17 +342,18 @@ def test_rgb_medium_map_glows_redder_through_the_thin_sphere(baked, tmp_path):
     assert np.all(np.abs(measured / expected - 1) < rel), (measured, expected, rel)
 
 
-def test_distortion_power_scale_and_ambient_act_as_published(baked):
-    """At the pixel through a sphere's centre the surface faces the eye (N = V), so with the light
-    behind (L = −z) the term's angular part is dot(V, −(L + N·δ)) = c − δ, c = dot(V, −L) = cos of the
-    eye ray's tilt off the axis (Barré-Brisebois & Bouchard 2011).  Two stills differ only in the term:
-    A (δ 0, power 1, scale 1, ambient 0) gives k·c; B (δ 0.5, power 2, scale 1.5, ambient 0.2) gives
-    k·((c − 0.5)²·1.5 + 0.2), with the same k = albedo · transmission.  The viewer stands 1.05 /
-    sin(17.5°) = 3.5 bounding radii from the box centre (viewer.js) and the thick sphere's centre lies
-    within half a radius of it (0.32 of 0.655), so the tilt is below atan(0.5 / 3.5) = 8.1° < 15°,
-    c ∈ [cos 15°, 1] and B/A
-    lies in [0.544, 0.575]; the 3×3-pixel patch keeps N·V ≥ 0.995 (≤ 2 % on B), and 8-bit sRGB adds
-    0.6 % per still.  A sign error in L + N·δ would give about 3.6."""
+def test_forward_scattering_and_strength_act_as_henyey_greenstein(baked):
+    """At the pixel through a sphere's centre the surface faces the eye (N = V).  The light is turned
+    40° about +y from straight behind (lightaz 220: its path −L leans 40° towards +x), so
+    μ = dot(V, −L) = cos(40° + τ), τ the eye ray's tilt towards −x off the axis; N·L = −μ < 0 keeps the
+    front term out.  Two stills differ only in the lobe: A (g 0, strength 1) gives k·1, B (g 0.5,
+    strength 1.5) gives k·1.5·((1 − g)² / (1 + g² − 2gμ))^{3/2} (the Henyey–Greenstein phase function
+    over its peak; Henyey & Greenstein, ApJ 93:70, 1941), with the same k = albedo · transmission.  The
+    viewer stands 1.05 / sin(17.5°) = 3.5 bounding radii from the box centre (viewer.js) and the thick
+    sphere's centre lies within half a radius of it (0.32 of 0.655), so τ is below atan(0.5 / 3.5) =
+    8.1° < 15°, and B/A lies between its values at 55° and 40°: [0.337, 0.557]; the 3×3-pixel patch
+    keeps N·V ≥ 0.995 (≤ 2 % on B), and 8-bit sRGB adds 0.6 % per still.  A sign error in μ would
+    give 0.066 or less, and a lobe ignoring g 1.5."""
     _chromium_or_skip()
     from PIL import Image
     from scipy import ndimage
@@ -364,8 +364,8 @@ def test_distortion_power_scale_and_ambient_act_as_published(baked):
     asset, map_path = baked
     preview = build_preview(str(asset), [str(map_path)], ViewSettings(attenuation=ATTENUATION, background="#000000"))
     centre = []
-    for term in ("distortion=0&power=1&scale=1&ambient=0", "distortion=0.5&power=2&scale=1.5&ambient=0.2"):
-        still = render_still(preview.html, 4 * SIZE, 2 * SIZE, params=f"{term}&fill=0&az=0&el=0")
+    for term in ("forward=0&strength=1", "forward=0.5&strength=1.5"):
+        still = render_still(preview.html, 4 * SIZE, 2 * SIZE, params=f"{term}&fill=0&az=0&el=0&lightaz=220&lightel=0")
         assert still.errors == []
         rgb = np.asarray(Image.open(io.BytesIO(still.png)).convert("RGB"))
         half = rgb.shape[1] // 2
@@ -373,8 +373,11 @@ def test_distortion_power_scale_and_ambient_act_as_published(baked):
         row, col = (int(round(x)) for x in ndimage.center_of_mass(mask))
         centre.append(_linear(rgb[row - 1:row + 2, half + col - 1:half + col + 2, 0]).mean())
     ratio = centre[1] / centre[0]
-    low = ((math.cos(math.radians(15)) - 0.5) ** 2 * 1.5 + 0.2) / math.cos(math.radians(15))
-    high = 0.5 ** 2 * 1.5 + 0.2
+
+    def lobe(angle_deg, g=0.5):
+        return ((1 - g) ** 2 / (1 + g * g - 2 * g * math.cos(math.radians(angle_deg)))) ** 1.5
+
+    low, high = 1.5 * lobe(40 + 15), 1.5 * lobe(40)
     slack = 0.02 + 2 * 0.006
     assert low * (1 - slack) < ratio < high * (1 + slack), (ratio, low, high)
 
@@ -403,6 +406,6 @@ def test_interactive_page_opens_from_a_file_with_its_controls(baked, tmp_path):
     errors = re.search(r'data-errors="([^"]*)"', body.group(1))
     assert errors and json.loads(html_lib.unescape(errors.group(1))) == []
     keys = set(re.findall(r'<label data-key="([a-z]+)"', proc.stdout))
-    assert {"distortion", "power", "scale", "ambient", "lightaz", "lightel", "attenuation"} <= keys
+    assert {"forward", "strength", "lightaz", "lightel", "attenuation"} <= keys
     assert re.search(r'<select id="mode">.*value="lit".*value="surface".*value="uv"', proc.stdout, re.S)
     assert "<canvas" in proc.stdout

@@ -15,9 +15,9 @@ EXAMPLES = """examples:
 
 def add_parser(sub, common) -> None:
     p = sub.add_parser("preview", parents=[common], help="a viewer page (and a still) of the asset lit from behind",
-                       description="Write a self-contained HTML page that shows the asset lit from behind with the "
-                                   "fast translucency term (Barre-Brisebois & Bouchard, GDC 2011), attenuated by the "
-                                   "thickness each map's sidecar decodes; optionally render a still with headless "
+                       description="Write a self-contained HTML page that shows the asset lit from behind, the light "
+                                   "that crosses it dimmed by the thickness each map's sidecar decodes and leaving it "
+                                   "in a Henyey-Greenstein lobe; optionally render a still with headless "
                                    "Chromium.", epilog=EXAMPLES)
     p.add_argument("asset", metavar="ASSET", help="the mesh the maps were baked from")
     p.add_argument("maps", metavar="MAP", nargs="*",

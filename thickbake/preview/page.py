@@ -3,8 +3,7 @@
 The page needs no network at view time: three.js (vendored in ``vendor/``, MIT licence kept there and
 quoted in the page) and every array travel gzip-compressed and base64-encoded inside ``<script>``
 blocks, and the browser unpacks them with its built-in ``DecompressionStream``.  The shading is our
-own code in ``viewer.js`` (the fast translucency term of Barré-Brisebois & Bouchard, GDC 2011; see
-there).  Same inputs → byte-identical page.
+own code in ``viewer.js`` (a back-light term with a Henyey–Greenstein lobe; see there).  Same inputs → byte-identical page.
 """
 
 from __future__ import annotations
@@ -36,10 +35,13 @@ GZIP_LEVEL = 6
 class ViewSettings:
     """The term's parameters and the first view (all overridable in the page and in its URL).
 
-    distortion, power, scale, ambient : float
-        The fast translucency term's δ (normal distortion of the back-light vector), exponent, scale
-        and ambient (Barré-Brisebois & Bouchard 2011).  The defaults are a soft, wide glow
-        (viewing defaults; common practice, no published source).
+    forward : float
+        Henyey–Greenstein asymmetry g in [0, 0.95] of the light leaving the body (Henyey & Greenstein,
+        ApJ 93:70, 1941): 0 glows the same from every side, towards 1 only along the light's path.
+    strength : float
+        Scale of the glow (1: a texel that lets all light through, seen along the light's path, is as
+        bright as a face lit head-on).  The defaults are a soft, wide glow (viewing defaults, no
+        published source).
     fill : float
         A dim light from the eye, so that thick parts are not black (0 = back light only).
     attenuation : float or None
@@ -53,10 +55,8 @@ class ViewSettings:
         Diffuse albedo, linear RGB.
     """
 
-    distortion: float = 0.2
-    power: float = 2.0
-    scale: float = 1.0
-    ambient: float = 0.1
+    forward: float = 0.3
+    strength: float = 1.0
     fill: float = 0.06
     attenuation: float | None = None
     az: float = 30.0
@@ -67,8 +67,7 @@ class ViewSettings:
 
     def hash_params(self) -> str:
         """The URL fragment that reproduces these settings in the page."""
-        values = {"distortion": self.distortion, "power": self.power, "scale": self.scale, "ambient": self.ambient,
-                  "fill": self.fill, "az": self.az, "el": self.el}
+        values = {"forward": self.forward, "strength": self.strength, "fill": self.fill, "az": self.az, "el": self.el}
         if self.attenuation is not None:
             values["attenuation"] = self.attenuation
         return "&".join(f"{k}={v:.9g}" for k, v in values.items())
@@ -199,8 +198,8 @@ def page_data(asset, entries: list[MapEntry], faces: list[np.ndarray], hidden: l
                        "code_max": e.code_max, "sigma_per_unit": e.sigma_per_unit,
                        "show_range": list(e.show_range)},
         } for e, f, h in zip(entries, faces, hidden)],
-        "defaults": {"distortion": settings.distortion, "power": settings.power, "scale": settings.scale,
-                     "ambient": settings.ambient, "fill": settings.fill, "attenuation": settings.attenuation,
+        "defaults": {"forward": settings.forward, "strength": settings.strength, "fill": settings.fill,
+                     "attenuation": settings.attenuation,
                      "az": settings.az, "el": settings.el},
         "albedo": list(settings.albedo), "background": settings.background, "fov_deg": settings.fov_deg,
         "units": ", ".join(sorted(units)) or "scene units",
@@ -287,8 +286,8 @@ def page_html(asset, entries: list[MapEntry], faces: list[np.ndarray], hidden: l
         '<div id="view"></div>',
         "<aside>",
         f"<h1>{esc(asset.name)}</h1>",
-        f"<p>{len(entries)} map{'s' if len(entries) != 1 else ''} ({esc(', '.join(measures))}), lit from behind with the "
-        "fast translucency term of Barré-Brisebois &amp; Bouchard (GDC 2011). Drag: camera. Shift- or right-drag: "
+        f"<p>{len(entries)} map{'s' if len(entries) != 1 else ''} ({esc(', '.join(measures))}), lit from behind: the light "
+        "that crosses the body leaves it in a Henyey–Greenstein lobe, dimmed as each map says. Drag: camera. Shift- or right-drag: "
         "light. Wheel: distance.</p>",
         '<select id="mode"><option value="lit">lit view</option><option value="surface">map on the surface</option>'
         '<option value="uv">map in UV space</option></select>',

@@ -1,24 +1,26 @@
-// thickbake viewer: an asset lit from behind with the fast translucency term its thickness maps feed.
+// thickbake viewer: an asset lit from behind, the light passing through it as its thickness maps say.
 //
 // Loaded by the page that thickbake/preview/page.py writes: that page embeds three.js (vendored, see
 // vendor/LICENSE), the asset's triangles and every map with its decode information, and calls
 // thickbakeViewer(THREE, DATA) once three.js is imported.  Nothing is fetched from the network.
 //
-// The term (Barré-Brisebois & Bouchard, "Approximating Translucency for a Fast, Cheap and Convincing
-// Subsurface Scattering Look", GDC 2011):
-//     vLTLight = L + N * distortion
-//     fLTDot   = pow(saturate(dot(V, -vLTLight)), power) * scale
-//     fLT      = attenuation * (fLTDot + ambient) * thickness
-//     colour  += albedo * lightColour * fLT
-// with L the unit vector towards the light, V towards the eye, N the surface normal and `thickness` the
-// local transmission the map provides (1 where light passes, 0 where the body is thick).  thickbake
-// maps store measures, so the shader turns each into that transmission through its sidecar:
+// The light that crosses the body (our own back-light term): it leaves the body towards the eye with
+// the Henyey-Greenstein phase function (Henyey & Greenstein, "Diffuse radiation in the Galaxy",
+// Astrophysical Journal 93:70-83, 1941), scaled to 1 in the light's own direction of travel:
+//     mu      = dot(V, -L)                                  cosine between the eye and the light's path
+//     lobe    = ((1 - g)^2 / (1 + g^2 - 2 g mu))^(3/2)      HG(mu; g) / HG(1; g), in (0, 1]
+//     glow    = strength * lobe * transmission
+//     colour  = albedo * light * (max(N.L, 0) + fill * max(N.V, 0) + glow)
+// with L the unit vector towards the light, V towards the eye, N the surface normal, g in [0, 1) the
+// forward scattering (0: the glow looks the same from every side) and `transmission` the share of the
+// light the map lets through (1 where light passes, 0 where the body is thick).  thickbake maps store
+// measures, so the shader turns each into that transmission through its sidecar:
 //     thickness (scene units) d -> exp(-d / attenuation distance), or per colour channel
 //                                  exp(-sigma_tr * mm_per_unit * d) for a measured medium;
 //     transmittance               -> the value itself;  occlusion of the inverted surface -> the value.
 //
 // URL fragment (all optional): #still posts one rendered frame to /result (used by `--png`);
-// az, el, lightaz, lightel (degrees), distortion, power, scale, ambient, fill, attenuation, mode
+// az, el, lightaz, lightel (degrees), forward (g), strength, fill, attenuation, mode
 // (lit|surface|uv), entry (index), size=W,H.
 'use strict';
 
@@ -71,10 +73,8 @@ function thickbakeViewer(THREE, DATA) {
     uniform vec3 uLightDir;        // unit vector towards the light (directional), world space
     uniform vec3 uLightColor;
     uniform vec3 uAlbedo;
-    uniform float uDistortion;
-    uniform float uPower;
-    uniform float uScaleLT;
-    uniform float uAmbientLT;
+    uniform float uForward;        // Henyey-Greenstein g of the light leaving the body
+    uniform float uStrength;
     uniform float uFill;           // a dim light from the eye so thick parts are not pitch black
     uniform int uMode;             // 0 lit, 1 map on surface
 
@@ -100,18 +100,18 @@ function thickbakeViewer(THREE, DATA) {
         outColor = vec4(srgbEncode(shown), 1.0);
         return;
       }
-      // local transmission of the back light: what the paper calls the local thickness map
+      // the share of the back light the body lets through here
       vec3 transmission;
       if (!uHasMap) transmission = vec3(0.0);
       else if (uKind == 0) transmission = exp(-uSigma * max(measure, 0.0));
       else transmission = clamp(measure, 0.0, 1.0);
-      // Barré-Brisebois & Bouchard 2011: distorted back-light vector, view-dependent power and scale,
-      // an ambient term, all attenuated by the local transmission
-      vec3 ltLight = L + N * uDistortion;
-      float ltDot = pow(clamp(dot(V, -ltLight), 0.0, 1.0), uPower) * uScaleLT;
-      vec3 lt = (ltDot + uAmbientLT) * transmission;
+      // Henyey-Greenstein lobe about the light's direction of travel (-L), 1 at its peak
+      float mu = dot(V, -L);
+      float g = uForward;
+      float lobe = pow((1.0 - g) * (1.0 - g) / max(1.0 + g * g - 2.0 * g * mu, 1e-12), 1.5);
+      vec3 glow = uStrength * lobe * transmission;
       vec3 front = vec3(max(dot(N, L), 0.0) + uFill * max(dot(N, V), 0.0));
-      vec3 colour = uAlbedo * uLightColor * (front + lt);
+      vec3 colour = uAlbedo * uLightColor * (front + glow);
       outColor = vec4(srgbEncode(colour), 1.0);
     }`;
 
@@ -138,10 +138,8 @@ function thickbakeViewer(THREE, DATA) {
   // ------------------------------------------------------------------ state and controls
   const defaults = DATA.defaults;
   const state = {
-    distortion: num('distortion', defaults.distortion),
-    power: num('power', defaults.power),
-    scale: num('scale', defaults.scale),
-    ambient: num('ambient', defaults.ambient),
+    forward: Math.max(0, Math.min(0.95, num('forward', defaults.forward))),
+    strength: num('strength', defaults.strength),
     fill: num('fill', defaults.fill),
     attenuation: num('attenuation', defaults.attenuation),
     az: num('az', defaults.az), el: num('el', defaults.el),
@@ -249,7 +247,7 @@ function thickbakeViewer(THREE, DATA) {
           uLightDir: { value: new THREE.Vector3(0, 0, -1) },
           uLightColor: { value: new THREE.Vector3(1, 1, 1) },
           uAlbedo: { value: new THREE.Vector3(...DATA.albedo) },
-          uDistortion: { value: 0 }, uPower: { value: 1 }, uScaleLT: { value: 1 }, uAmbientLT: { value: 0 },
+          uForward: { value: 0 }, uStrength: { value: 1 },
           uFill: { value: 0 }, uMode: { value: 0 },
         },
         userData: { entry },
@@ -320,8 +318,7 @@ function thickbakeViewer(THREE, DATA) {
         const u = m.uniforms;
         const entry = m.userData.entry;
         u.uLightDir.value.copy(light);
-        u.uDistortion.value = state.distortion; u.uPower.value = state.power;
-        u.uScaleLT.value = state.scale; u.uAmbientLT.value = state.ambient; u.uFill.value = state.fill;
+        u.uForward.value = state.forward; u.uStrength.value = state.strength; u.uFill.value = state.fill;
         u.uMode.value = state.mode === 'surface' ? 1 : 0;
         if (entry && entry.decode.sigma_per_unit) u.uSigma.value.set(...entry.decode.sigma_per_unit);
         else u.uSigma.value.setScalar(1 / attenuation);
@@ -349,10 +346,8 @@ function thickbakeViewer(THREE, DATA) {
   function controls(view) {
     const panel = document.getElementById('controls');
     const sliders = [
-      ['distortion', 'distortion (N·δ added to L)', 0, 1, 0.01],
-      ['power', 'power', 0.25, 16, 0.25],
-      ['scale', 'scale', 0, 4, 0.05],
-      ['ambient', 'ambient', 0, 1, 0.01],
+      ['forward', 'forward scattering g', 0, 0.95, 0.01],
+      ['strength', 'glow strength', 0, 4, 0.05],
       ['fill', 'front fill light', 0, 1, 0.01],
       ['lightaz', 'light azimuth (°)', -360, 360, 1],
       ['lightel', 'light elevation (°)', -89, 89, 1],
