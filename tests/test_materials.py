@@ -411,6 +411,7 @@ f 2/2/1 3/3/1 4/4/1 1/1/1 2/2/1
     ("leading white space", False),
     ("one-number vt", False),
     ("mixed corner forms", False),
+    ("mixed forms, same slash total", False),
     ("line continuation", False),
 ])
 def test_obj_bulk_parser_matches_the_line_parser(variant, bulk):
@@ -433,6 +434,9 @@ def test_obj_bulk_parser_matches_the_line_parser(variant, bulk):
         "leading white space": lambda b: b.replace(b"v 1 1 0", b"  v 1 1 0"),
         "one-number vt": lambda b: b.replace(b"vt 1 1", b"vt 1"),
         "mixed corner forms": lambda b: b.replace(b"f 1/1/1 3/3/1 4/4/1", b"f 1//1 3//1 4//1"),
+        # three slashes, three and none: the file's slash total still fits "v/t/n", so each corner
+        # must be checked alone (the line parser reads v 1, 3, 4 and takes "4" as having no vt/vn)
+        "mixed forms, same slash total": lambda b: b.replace(b"f 1/1/1 3/3/1 4/4/1", b"f 1/1/1/1 3/3/1/1 4"),
         "line continuation": lambda b: b.replace(b"v 1 1 0", b"v 1 \\\n1 0"),
     }.get(variant, lambda b: b)(body)
     fast = readers._parse_obj_bulk(body, "asset")

@@ -474,7 +474,7 @@ def _parse_obj_bulk(data: bytes, stem: str):
     first_token = every[np.argmax(is_face)].split()[1]
     slashes, doubled = first_token.count(b"/"), first_token.count(b"//")
     total = int(corners.sum())
-    if corners.min() < 3 or slashes > 2 or text.count(b"/") != total * slashes or text.count(b"//") != total * doubled:
+    if corners.min() < 3 or slashes > 2 or not _one_corner_form(buf, token_start, slashes, doubled):
         return None
     fields = (1 + slashes) - doubled
     try:
@@ -503,6 +503,21 @@ def _parse_obj_bulk(data: bytes, stem: str):
     table[:, 0:9:3], table[:, 1:9:3], table[:, 2:9:3] = a, b, c
     table[:, 9], table[:, 10] = part[face], material[face]
     return positions, texcoords, normals, table, part_names, material_names
+
+
+def _one_corner_form(buf: np.ndarray, token_start: np.ndarray, slashes: int, doubled: int) -> bool:
+    """Whether every corner token of the joined face text has the first corner's form: ``slashes`` '/'
+    marks of which ``doubled`` pairs are adjacent ('v', 'v/t', 'v//n' or 'v/t/n').
+
+    ``buf`` (b,) uint8 is the text; ``token_start`` (k,) the offsets of its tokens (``f`` heads and corners).
+    """
+    slash = np.flatnonzero(buf == ord("/"))
+    token_of = np.searchsorted(token_start, slash, side="right") - 1
+    per_token = np.bincount(token_of, minlength=len(token_start))
+    pairs = slash[:-1][np.diff(slash) == 1]
+    per_token_pairs = np.bincount(np.searchsorted(token_start, pairs, side="right") - 1, minlength=len(token_start))
+    corner = buf[token_start] != ord("f")
+    return bool((per_token[corner] == slashes).all() and (per_token_pairs[corner] == doubled).all())
 
 
 def _obj_face_labels(labels: list, is_face: np.ndarray, stem: str):
