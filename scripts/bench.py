@@ -55,6 +55,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 import thickbake  # noqa: E402
+from thickbake.maps.files import atomic_write_bytes  # noqa: E402
 from thickbake.pipeline.load import load_asset  # noqa: E402
 from thickbake.pipeline.trace import EmbreeEngine  # noqa: E402
 
@@ -375,7 +376,7 @@ def main(argv=None) -> int:
     if args.only_adaptive:
         figures = {"adaptive": adaptive_section(args.quick)}
         if args.json:
-            Path(args.json).write_text(json.dumps(figures, indent=2) + "\n")
+            atomic_write_bytes(args.json, (json.dumps(figures, indent=2) + "\n").encode())
         return 0
 
     figures: dict = {"machine": {"cores": os.cpu_count(), "python": sys.version.split()[0]}}
@@ -445,7 +446,7 @@ def main(argv=None) -> int:
         print(f"{m['size']}² bake, 64 rays, {m['rays_traced']:,} rays in {m['seconds']:.0f} s: "
               f"peak RSS {m['peak_rss_mb']:.0f} MB (target < 1536 MB)")
     if args.json:
-        Path(args.json).write_text(json.dumps(figures, indent=2) + "\n")
+        atomic_write_bytes(args.json, (json.dumps(figures, indent=2) + "\n").encode())
     return 0
 
 

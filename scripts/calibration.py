@@ -20,6 +20,7 @@ from pathlib import Path
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from thickbake.checks.calibration import calibration_table, table_lines  # noqa: E402
+from thickbake.maps.files import atomic_write_bytes  # noqa: E402
 
 
 def main(argv=None) -> int:
@@ -29,7 +30,7 @@ def main(argv=None) -> int:
     rows = calibration_table()
     print("\n".join(table_lines(rows)))
     if args.json:
-        Path(args.json).write_text(json.dumps([r.to_dict() for r in rows], indent=2) + "\n")
+        atomic_write_bytes(args.json, (json.dumps([r.to_dict() for r in rows], indent=2) + "\n").encode())
     return 0
 
 

@@ -137,9 +137,10 @@ def test_standard_error_map_is_calibrated():
     # standard error is a Student-like statistic: the share of texels within ±1.96 standard errors is
     # what the same statistic gives on simulated rays.  The reported standard error starts from the spread
     # of R = 4 replicate means (rays j ≡ r mod 4; randomised-QMC replicates, Owen 1997) and is moderated
-    # with the texel's aligned 4×4 block (Smyth 2004, eq. 7); on the sphere every texel has the same
-    # variance, so the prior degrees of freedom come out unbounded and σ̃² is the mean over the block's
-    # covered texels of their replicate variances.  The simulation forms the same statistic on the bake's
+    # with the texel's aligned 4×4 block (Smyth 2004, §4); on the sphere every texel has the same
+    # variance, so the prior degrees of freedom come out unbounded or, by chance (the estimated excess
+    # spread is positive for about half of all draws), at least the 3·15 = 45 dof a block can lend, and
+    # either way σ̃² is the mean over the block's covered texels of their replicate variances.  The simulation forms the same statistic on the bake's
     # own covered mask: per texel the sample standard deviation of its 4 replicate means over √4, squared,
     # averaged over its block.  The reference share is simulated here with numpy from the exact per-ray
     # law on the sphere (cosine lobe: cosθ = √u, value offset_chord), not with the package.  Texels are
@@ -152,7 +153,7 @@ def test_standard_error_map_is_calibrated():
     sphere = shapes.sphere(radius=1.0)
     rays = 64
     result = thickbake.bake(sphere.mesh, size=96, rays=rays, sequence="random")
-    assert result.info["stderr_dof"]["prior"] is None
+    assert result.info["stderr_dof"]["prior"] is None or result.info["stderr_dof"]["prior"] >= 45
     bias = result.settings.bias
     covered = result.covered
     values = result.values[covered].astype(np.float64)

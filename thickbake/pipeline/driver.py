@@ -26,7 +26,8 @@ from thickbake.maps.encode import normalise, quantise
 from thickbake.constants import ESCAPE_MARGIN
 from thickbake.errors import ThickbakeError
 from thickbake.measures import measure_named
-from thickbake.pipeline.measures import Moments, block_labels, moderated_stderr_map, moderated_variance, prior_dof, texel_reduce
+from thickbake.pipeline.measures import (MODERATION_BLOCK, Moments, block_labels, moderated_stderr_map, moderated_variance,
+                                         prior_dof, texel_reduce)
 from thickbake.pipeline.load import Asset, load_asset
 from thickbake.pipeline.finish import fit_reach, medium_record, medium_scale
 from thickbake.maps.files import check_output_path, write_map
@@ -45,9 +46,10 @@ from thickbake.pipeline.texels import morton_order, pixel_triangles, place_sampl
 ADAPTIVE_FIRST_BATCH = 8
 #: Side, in texels, of the aligned blocks whose samples lend each other strength when adaptive
 #: sampling decides whether a sample needs more rays (:func:`thickbake.pipeline.measures.moderated_variance`).
-#: Blocks are aligned to multiples of 4 texels and tiles are aligned powers of two ≥ 16, so a block
-#: never straddles tiles and the map does not depend on the tiling.
-ADAPTIVE_POOL_BLOCK = 4
+#: The map moderation's block (:data:`thickbake.pipeline.measures.MODERATION_BLOCK`): blocks are aligned
+#: to multiples of 4 texels and tiles are aligned powers of two ≥ 16, so a block never straddles tiles
+#: and the map does not depend on the tiling.
+ADAPTIVE_POOL_BLOCK = MODERATION_BLOCK
 #: Rays generated and traced per engine call.  Small enough that the direction arrays of one call
 #: (~12 bytes a ray each) stay in the core's L2 cache while numpy builds them, large enough that the
 #: per-call overhead is negligible.
@@ -389,9 +391,12 @@ def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, eng
                              path=asset.path, fix="check the UVs lie inside the 0–1 square or in UDIM tiles")
     timing = {"setup_seconds": round(setup_seconds, 3), "trace_seconds": round(trace_seconds, 3)}
     own_dof = 0 if ctx.rays_per_sample < 2 else replicate_count(ctx.rays_per_sample) - 1
-    # adaptive maps: a texel borrows only from neighbours that traced as many rays
+    # adaptive maps: a texel borrows only from neighbours that traced as many rays; every map: the
+    # moderation works on variance × rays, so a border texel holding fewer samples (--supersample)
+    # borrows its neighbours' per-ray variance, not the smaller variance of their larger means
     strata = ctx.rays if s.target_error is not None else None
-    ctx.stderr, stderr_dof, prior_dof = moderated_stderr_map(ctx.stderr, covered, own_dof, strata=strata)
+    ctx.stderr, stderr_dof, prior_dof = moderated_stderr_map(ctx.stderr, covered, own_dof, strata=strata,
+                                                             count=ctx.rays)
     info = _bake_info(ctx, covered, totals, time.perf_counter() - start, timing)
     info["rays_retraced"] = int(sum(getattr(e, "rays_retraced", 0) for e in engines) - retraced_before)
     info["stderr_dof"] = {"own": own_dof, "prior": None if math.isinf(prior_dof) else round(float(prior_dof), 3),
@@ -759,19 +764,21 @@ def _needs_more(moments: Moments, rows: np.ndarray, block: np.ndarray, target: f
     """(m,) bool: which of the still active samples (``rows`` of ``moments``) trace another batch.
 
     All of them have traced the same rays so far.  A sample goes on while its moderated variance —
-    its own replicate variance shrunk towards the pooled variance of the other active samples of its
-    aligned block, with the prior degrees of freedom estimated from that block's own spread
-    (:func:`thickbake.pipeline.measures.moderated_variance`, Smyth 2004) — exceeds ``target``² and it
-    is below the cap.  An own variance on R − 1 = 3 degrees of freedom alone is noisy both ways: a
-    thin-wall sample whose few rays all missed the rare long grazing chords reports a tiny spread and
-    would stop with a large error, while a quarter of the samples whose true error meets the target
-    report one above it and trace on.  Neighbours see nearly the same integrand with independent
-    randomisations, so where they agree the decision rests on many more degrees of freedom; where they
-    differ (an island border, a thick part beside a thin one) the estimated prior weight falls and each
-    sample's own spread decides.
+    its own replicate variance shrunk towards the local prior of the other active samples of its
+    aligned block (:func:`thickbake.pipeline.measures.moderated_variance`, Smyth 2004) — exceeds
+    ``target``² and it is below the cap.  The prior degrees of freedom d₀ are estimated once from all
+    the active samples of the tile (:func:`thickbake.pipeline.measures.prior_dof`, each compared with
+    its block), as the map's moderation estimates one d₀ per map: one block's ≤ 16 samples are far too
+    few to estimate a spread of spreads.  An own variance on R − 1 = 3 degrees of freedom alone is noisy
+    both ways: a thin-wall sample whose few rays all missed the rare long grazing chords reports a tiny
+    spread and would stop with a large error, while of the samples whose true error just meets the
+    target 39% report one above it (P(χ²₃/3 > 1) = 0.39) and trace on.  Neighbours see nearly the
+    same integrand with independent randomisations, so where they agree the decision rests on many
+    more degrees of freedom; where the tile's samples differ from their neighbours the estimated prior
+    weight falls and each sample's own spread counts for more.
     """
     var = np.square(moments.stderr()[rows])
     dof = moments.replicates - 1
     _, group = np.unique(block, return_inverse=True)
-    moderated, _ = moderated_variance(var, dof, group, prior_dof(var, dof, group, per_group=True))
+    moderated, _ = moderated_variance(var, dof, group, prior_dof(var, dof, group))
     return (moderated > target * target) & (moments.count[rows] < cap)
