@@ -82,7 +82,7 @@ def _smyth_map(rng, d0, side=256, block=4):
 @pytest.mark.parametrize("d0", [4.0, 10.0, 30.0])
 def test_map_prior_dof_recovers_the_hierarchical_model_on_single_texels(d0):
     # The map estimator must read d0 on the units it is applied to (single texels): an estimate on
-    # 2×2-averaged variances came out 6.8 / 24.7 / 110 for these true 4 / 10 / 30.  Spread measured over
+    # 2×2-averaged variances came out about 7 / 23 / 80 for these true 4 / 10 / 30.  Spread measured over
     # 20 independent 256² maps; their mean must lie within 4 standard errors of the true d0 (6e-5 risk).
     rng = np.random.default_rng(int(d0))
     covered = np.ones((256, 256), bool)

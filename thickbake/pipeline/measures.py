@@ -21,10 +21,11 @@ error is 0 (the measurement is deterministic).
 Three degrees of freedom are few, and on a thin wall the replicate means are skewed: a texel whose
 replicates all missed the rare long grazing chords reports a short value *and* a small spread.  The
 map's standard error is therefore moderated with its aligned 4×4-texel block, the empirical-Bayes
-moderated variance of Smyth (2004): the own variance shrunk towards the pooled variance of the block's
-other texels, with prior degrees of freedom d₀ estimated from how much neighbouring variances differ
-(:func:`prior_dof`, :func:`moderated_stderr_map`); bands then use Student-t on d₀ᵢ + R − 1 degrees of
-freedom (:func:`dof_coverage_factor`).  Adaptive sampling stops on the same moderated variance.
+moderated variance of Smyth (2004): the own variance per ray shrunk towards the pooled variance per ray
+of the block's other texels, with prior degrees of freedom d₀ estimated from how much single neighbouring
+texels' variances differ (:func:`prior_dof`, :func:`map_prior_dof`, :func:`moderated_stderr_map`); bands
+then use Student-t on d₀ᵢ + R − 1 degrees of freedom (:func:`dof_coverage_factor`).  Adaptive sampling
+stops on the same moderated variance, with one d₀ per tile.
 """
 
 from __future__ import annotations
@@ -395,8 +396,9 @@ def dof_coverage_factor(level: float, dof):
     """k = t_{(1+level)/2, dof}: the two-sided ``level`` band of a standard error on ``dof`` degrees of
     freedom (float or array; inf dof gives the normal quantile; 0 dof gives inf).
 
-    For the moderated σ̃ of :func:`moderated_variance`, (x̄ − μ)/σ̃ follows Student's t on d₀ + d
-    degrees of freedom (Smyth 2004, §4).
+    For the moderated σ̃ of :func:`moderated_variance` the bands use d₀ᵢ + d degrees of freedom: exact
+    (one-way pooling, normal replicate means) where d₀ is unbounded; for a finite d₀ Smyth's (2004, §4)
+    t, here conservative because the prior scale is the neighbours' plain mean (see there).
 
     Examples
     --------
