@@ -71,6 +71,21 @@ def test_prior_dof_recovers_the_hierarchical_model():
     assert prior_dof(s2, d, np.repeat(np.arange(blocks), per_block)) > 36.8
 
 
+def test_map_prior_dof_on_the_grid_is_prior_dof_of_single_texels():
+    # the map estimator works on the grid in float32; it must be prior_dof (float64) of the covered
+    # texels grouped by aligned block and stratum, zero variances left out: equal to float32 rounding
+    rng = np.random.default_rng(6)
+    v = np.exp(rng.normal(0, 1, (50, 70))) * rng.chisquare(3, (50, 70)) / 3
+    covered = rng.random((50, 70)) < 0.8
+    v[rng.random((50, 70)) < 0.02] = 0
+    strata = rng.integers(0, 3, (50, 70))
+    index = np.flatnonzero(covered.ravel())
+    block = (index // 70 // 4) * 18 + (index % 70) // 4
+    assert map_prior_dof(v, covered, 3) == pytest.approx(prior_dof(v.ravel()[index], 3, block), rel=1e-5)
+    key = np.unique(block * 3 + strata.ravel()[index], return_inverse=True)[1]
+    assert map_prior_dof(v, covered, 3, strata=strata) == pytest.approx(prior_dof(v.ravel()[index], 3, key), rel=1e-5)
+
+
 def _smyth_map(rng, d0, side=256, block=4):
     """(side, side) texel variances under Smyth's model: a scale s0² per aligned block (free, log-normal),
     σ² = d0·s0²/χ²_{d0} per texel, s² = σ² χ²₃/3 (R = 4 replicates)."""

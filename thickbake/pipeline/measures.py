@@ -262,8 +262,11 @@ def _blocks(a: np.ndarray, block: int) -> np.ndarray:
 
 def map_prior_dof(variance: np.ndarray, covered: np.ndarray, dof: int, block: int = MODERATION_BLOCK,
                   strata: np.ndarray | None = None) -> float:
-    """d₀ of a map's texel variances (:func:`prior_dof`): single covered texels, each compared with the
+    """d₀ of a map's texel variances: :func:`prior_dof` on single covered texels, each compared with the
     other texels of its aligned block (and stratum), the same units the moderation applies d₀ to.
+
+    Computed on the grid in float32 (block sums broadcast back to their texels, sums of squares in
+    float64), so a 4096² map needs a few map-sized float32 arrays, no per-texel index arrays.
 
     Parameters
     ----------
@@ -280,12 +283,28 @@ def map_prior_dof(variance: np.ndarray, covered: np.ndarray, dof: int, block: in
     float
         d₀ ≥ 0, possibly inf.
     """
-    w = covered.shape[1]
-    index = np.flatnonzero(np.asarray(covered).ravel())
-    group = block_labels(index, w, block)
-    if strata is not None:
-        group = _stratified(group, np.asarray(strata).ravel()[index])
-    return prior_dof(np.asarray(variance, np.float64).ravel()[index], dof, group)
+    from scipy.special import polygamma
+
+    var_b = _blocks(np.asarray(variance, np.float32), block)
+    positive = _blocks(np.asarray(covered, bool), block) & (var_b > 0)
+    e_b = np.zeros(var_b.shape, np.float32)
+    np.log(var_b, out=e_b, where=positive)
+    total, used = 0.0, 0
+    for level in [None] if strata is None else np.unique(np.asarray(strata)[covered]):
+        mine = positive if level is None else positive & _blocks(np.asarray(strata) == level, block)
+        e = np.where(mine, e_b, np.float32(0))
+        others = mine.sum(axis=(1, 3), dtype=np.float32)[:, None, :, None] - np.float32(1)
+        loo = e.sum(axis=(1, 3), dtype=np.float64).astype(np.float32)[:, None, :, None] - e
+        loo /= np.maximum(others, 1)
+        use = mine & (others >= 1)
+        r2 = np.square(e - loo, out=loo)
+        r2 /= 1 + 1 / np.maximum(others, 1)                    # the leave-one-out mean's own spread
+        total += float(r2.sum(dtype=np.float64, where=use))
+        used += int(np.count_nonzero(use))
+    if used == 0:
+        return math.inf
+    excess = total / used - float(polygamma(1, dof / 2))
+    return 2.0 * _trigamma_inverse(excess) if excess > 0 else math.inf
 
 
 def _stratified(block: np.ndarray, stratum: np.ndarray) -> np.ndarray:
@@ -337,10 +356,8 @@ def moderated_stderr_map(stderr: np.ndarray, covered: np.ndarray, dof: int, bloc
         out[covered] = np.asarray(stderr)[covered]
         return out, np.zeros((h, w), np.float32), 0.0
     variance = np.square(np.where(covered, stderr, 0).astype(np.float32))
-    scale = None
-    if count is not None:
-        scale = np.where(covered, np.maximum(np.asarray(count), 1), 1).astype(np.float32)
-        variance *= scale
+    if count is not None:                                  # per-ray variance; off ``covered`` it is 0
+        np.multiply(variance, count, out=variance, casting="unsafe")
     d0 = map_prior_dof(variance, covered, dof, block, strata)
     var_b = _blocks(variance, block)
     out_b = np.zeros(var_b.shape, np.float32)
@@ -359,10 +376,12 @@ def moderated_stderr_map(stderr: np.ndarray, covered: np.ndarray, dof: int, bloc
         prior /= weight + dof                                          # (d₀ᵢ s₀ᵢ² + d sᵢ²)/(d₀ᵢ + d)
         np.copyto(out_b, prior, where=mine_b)
         np.copyto(dof_b, weight + dof, where=mine_b, casting="unsafe")
+    del var_b, variance, own, prior
     rows = out_b.shape[0] * block
     out = out_b.reshape(rows, -1)[:h, :w].copy()
-    if scale is not None:
-        out /= scale
+    del out_b
+    if count is not None:
+        np.divide(out, count, out=out, where=covered, casting="unsafe")
     np.sqrt(out, out=out)
     return out, dof_b.reshape(rows, -1)[:h, :w].copy(), d0
 
