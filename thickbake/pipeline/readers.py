@@ -465,13 +465,36 @@ def _parse_obj_bulk(data: bytes, stem: str):
     if not is_face.any():
         return (positions, texcoords, normals, np.zeros((0, 11), np.int64), {},
                 _obj_face_labels(label_lines, face_of_event, stem)[3])
-    text = b" " + b" ".join(every[is_face]) + b" "
+    parsed = _obj_face_corners(every[is_face])
+    if parsed is None:
+        return None
+    corners, refs = parsed
+    # fan each polygon (corners c₀ … c_{m−1}) into triangles (c₀, c_i, c_{i+1}), i = 1 … m − 2
+    fans = corners - 2
+    face = np.repeat(np.arange(len(corners)), fans)
+    start = (np.cumsum(corners) - corners)[face]
+    i = expand_ranges(fans) + 1
+    a, b, c = refs[start], refs[start + i], refs[start + i + 1]
+    part, material, part_names, material_names = _obj_face_labels(label_lines, face_of_event, stem)
+    table = np.empty((len(face), 11), np.int64)
+    table[:, 0:9:3], table[:, 1:9:3], table[:, 2:9:3] = a, b, c
+    table[:, 9], table[:, 10] = part[face], material[face]
+    return positions, texcoords, normals, table, part_names, material_names
+
+
+def _obj_face_corners(faces: np.ndarray):
+    """Corner counts and corner references of ``f`` lines, or None for the line parser.
+
+    ``faces`` (n,) object array of the lines (``b"f 1/1/1 2/2/1 3/3/1"``).  Returns (n,) int64 corners
+    per face and (Σcorners, 3) int64 0-based (vertex, vt, vn) references, −1 where a corner has none.
+    """
+    text = b" " + b" ".join(faces) + b" "
     buf = np.frombuffer(text, np.uint8)
     space = buf == ord(" ")
     token_start = np.flatnonzero(~space[1:] & space[:-1]) + 1
     face_start = np.flatnonzero(buf == ord("f"))
     corners = np.diff(np.searchsorted(token_start, np.r_[face_start, len(buf)])) - 1
-    first_token = every[np.argmax(is_face)].split()[1]
+    first_token = faces[0].split()[1]
     slashes, doubled = first_token.count(b"/"), first_token.count(b"//")
     total = int(corners.sum())
     if corners.min() < 3 or slashes > 2 or not _one_corner_form(buf, token_start, slashes, doubled):
@@ -492,17 +515,7 @@ def _parse_obj_bulk(data: bytes, stem: str):
         refs[:, 1] = ints[:, 1]
     if slashes == 2:
         refs[:, 2] = ints[:, -1]
-    # fan each polygon (corners c₀ … c_{m−1}) into triangles (c₀, c_i, c_{i+1}), i = 1 … m − 2
-    fans = corners - 2
-    face = np.repeat(np.arange(len(corners)), fans)
-    start = (np.cumsum(corners) - corners)[face]
-    i = expand_ranges(fans) + 1
-    a, b, c = refs[start], refs[start + i], refs[start + i + 1]
-    part, material, part_names, material_names = _obj_face_labels(label_lines, face_of_event, stem)
-    table = np.empty((len(face), 11), np.int64)
-    table[:, 0:9:3], table[:, 1:9:3], table[:, 2:9:3] = a, b, c
-    table[:, 9], table[:, 10] = part[face], material[face]
-    return positions, texcoords, normals, table, part_names, material_names
+    return corners, refs
 
 
 def _one_corner_form(buf: np.ndarray, token_start: np.ndarray, slashes: int, doubled: int) -> bool:
