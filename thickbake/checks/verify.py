@@ -283,7 +283,7 @@ def _per_texel_row(subject: str, quantity: str, result, expected_t: np.ndarray, 
     share_95 = float(np.mean(error > bound_95))
     ok = not over_max.any() and share_95 <= allowed_95
     if dof >= 1:
-        stat = (f"{k_max:.2f}σ_pool every texel (σ_pool {sigma_pool:.3g}: RMS of the texels' replicate standard "
+        stat = (f"{k_max:.2f}σ_pool every texel (σ_pool {sigma_pool:.3g}: RMS of the texels' moderated standard "
                 f"errors, {n * dof:,} dof; Bonferroni over {n:,} texels, family-wise {FAMILY_ALPHA:g}) and the "
                 f"calibrated 95% band t·σ̃ (Student-t on each texel's moderated dof, median {k95:.2f}σ̃ at "
                 f"{float(np.median(texel_dof)):.3g} dof) for all but {allowed_95:.1%} of texels "
