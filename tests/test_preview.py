@@ -353,7 +353,7 @@ def test_forward_scattering_and_strength_act_as_henyey_greenstein(baked):
     sphere's centre lies within half a radius of it (0.32 of 0.655), so τ is below atan(0.5 / 3.5) =
     8.1° < 15°, and B/A lies between its values at 55° and 40°: [0.337, 0.557]; the 3×3-pixel patch
     keeps N·V ≥ 0.995 (≤ 2 % on B), and 8-bit sRGB adds 0.6 % per still.  A sign error in μ would
-    give 0.066 or less, and a lobe ignoring g 1.5."""
+    use μ = −cos(40° + τ), B/A 0.066 (τ = 0) to 0.076 (τ = 15°), and a lobe ignoring g 1.5."""
     _chromium_or_skip()
     from PIL import Image
     from scipy import ndimage

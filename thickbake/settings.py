@@ -397,7 +397,7 @@ def check_memory(settings: BakeSettings, run: RunOptions) -> None:
         raise ThickbakeError(
             f"a {settings.size[0]}x{settings.size[1]} map needs about {est / 1024**3:.1f} GiB, over the "
             f"{MEMORY_CAP_BYTES / 1024**3:.0f} GiB cap",
-            fix="bake a smaller size (4096x4096 needs about 1 GiB)",
+            fix="bake a smaller size (4096x4096 needs about 1.1 GiB)",
         )
 
 
