@@ -50,6 +50,11 @@ ADAPTIVE_FIRST_BATCH = 8
 #: to multiples of 4 texels and tiles are aligned powers of two ≥ 16, so a block never straddles tiles
 #: and the map does not depend on the tiling.
 ADAPTIVE_POOL_BLOCK = MODERATION_BLOCK
+#: Rays per tile an adaptive bake cuts its tiles for, whatever the run's ``chunk_rays``: its stopping
+#: rule estimates one prior d₀ per tile (:func:`_needs_more`), so there, unlike in a fixed bake, the
+#: tile shapes the map, and run options must not.  The ray batches inside a tile still follow
+#: ``chunk_rays``, which keeps bounding the memory of the rays in flight.
+ADAPTIVE_TILE_RAYS = RunOptions().chunk_rays
 #: Rays generated and traced per engine call.  Small enough that the direction arrays of one call
 #: (~12 bytes a ray each) stay in the core's L2 cache while numpy builds them, large enough that the
 #: per-call overhead is negligible.
@@ -434,7 +439,8 @@ def _prepare(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, engi
     width, height = s.size
     tri_px, valid, jacobian, _ = pixel_triangles(asset.triangles, group.triangle_uv, group.faces, width, height)
     rays_per_sample = 1 if s.cone == 0 else traced_rays(s.rays)
-    tile = _tile_side(r.chunk_rays, rays_per_sample, s.supersample, width, height)
+    tile_rays = ADAPTIVE_TILE_RAYS if s.target_error is not None else r.chunk_rays
+    tile = _tile_side(tile_rays, rays_per_sample, s.supersample, width, height)
     tiles, starts, members = tile_buckets(tri_px, valid, width, height, tile)
     ctx = _Context(
         asset=asset, settings=s, run=r, engines=engines, engine_of_face=engine_of_face, tri_px=tri_px,
@@ -768,8 +774,9 @@ def _needs_more(moments: Moments, rows: np.ndarray, block: np.ndarray, target: f
     aligned block (:func:`thickbake.pipeline.measures.moderated_variance`, Smyth 2004) — exceeds
     ``target``² and it is below the cap.  The prior degrees of freedom d₀ are estimated once from all
     the active samples of the tile (:func:`thickbake.pipeline.measures.prior_dof`, each compared with
-    its block), as the map's moderation estimates one d₀ per map: one block's ≤ 16 samples are far too
-    few to estimate a spread of spreads.  An own variance on R − 1 = 3 degrees of freedom alone is noisy
+    its block), as the map's moderation estimates one d₀ per map: one block's 16·supersample² samples
+    are far too few to estimate a spread of spreads.  An adaptive bake's tiles are cut for
+    :data:`ADAPTIVE_TILE_RAYS`, not the run's ``chunk_rays``, so the map does not depend on it.  An own variance on R − 1 = 3 degrees of freedom alone is noisy
     both ways: a thin-wall sample whose few rays all missed the rare long grazing chords reports a tiny
     spread and would stop with a large error, while of the samples whose true error just meets the
     target 39% report one above it (P(χ²₃/3 > 1) = 0.39) and trace on.  Neighbours see nearly the
