@@ -85,7 +85,7 @@ def test_stopping_rule_borrows_from_agreeing_neighbours_only():
     more = _needs_more(m, np.arange(n), block, target, 64)
     assert not more.any() and (var > target ** 2).sum() > 100
     # one sample in one block whose replicate means spread 100× more (a thick part beside a thin one):
-    # with any prior weight d0ᵢ ≤ 45 its own 3 dof carry at least 3/48 of its 10⁴-fold variance, so it
+    # with any prior weight d0ᵢ ≤ 45 its own 3 dof carry at least 3/48 of its several-hundredfold variance, so it
     # goes on (its quiet block-mates go on too: their prior is the mean of the others' variances)
     m.add(np.arange(1), np.array([[-5.0, 5.0, -5.0, 5.0, 0.0, 0.0, 0.0, 0.0]]))
     assert _needs_more(m, np.arange(n), block, target, 64)[0]

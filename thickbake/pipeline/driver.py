@@ -400,11 +400,11 @@ def _bake_map(asset: Asset, s: BakeSettings, r: RunOptions, group: MapGroup, eng
     # moderation works on variance × rays, so a border texel holding fewer samples (--supersample)
     # borrows its neighbours' per-ray variance, not the smaller variance of their larger means
     strata = ctx.rays if s.target_error is not None else None
-    ctx.stderr, stderr_dof, prior_dof = moderated_stderr_map(ctx.stderr, covered, own_dof, strata=strata,
+    ctx.stderr, stderr_dof, map_d0 = moderated_stderr_map(ctx.stderr, covered, own_dof, strata=strata,
                                                              count=ctx.rays)
     info = _bake_info(ctx, covered, totals, time.perf_counter() - start, timing)
     info["rays_retraced"] = int(sum(getattr(e, "rays_retraced", 0) for e in engines) - retraced_before)
-    info["stderr_dof"] = {"own": own_dof, "prior": None if math.isinf(prior_dof) else round(float(prior_dof), 3),
+    info["stderr_dof"] = {"own": own_dof, "prior": None if math.isinf(map_d0) else round(float(map_d0), 3),
                           "median": float(np.median(stderr_dof[covered]))}
     if fit:
         reach, info["reach_fit"] = fit_reach(ctx.values, covered, s.reach)

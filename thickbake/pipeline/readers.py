@@ -24,7 +24,6 @@ from __future__ import annotations
 import base64
 import io
 import json
-import os
 import struct
 import warnings
 from dataclasses import dataclass, field
