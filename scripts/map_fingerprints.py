@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import hashlib
+import os
 import subprocess
 import sys
 import tempfile
@@ -40,6 +41,8 @@ def main(argv=None) -> int:
     parser.add_argument("--rays", default="16")
     args = parser.parse_args(argv)
     cli = [sys.executable, "-m", "thickbake"]
+    # the checkout this script lives in, whatever the working folder or an installed copy
+    os.environ["PYTHONPATH"] = os.pathsep.join([str(ROOT), *filter(None, [os.environ.get("PYTHONPATH")])])
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         subprocess.run(cli + ["shapes", str(tmp / "shapes")], check=True, capture_output=True)
