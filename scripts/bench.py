@@ -123,23 +123,17 @@ def raw_embree_scene(asset, robust: bool):
     return scene, mesh
 
 
-def replay(scene, batches, threads: int) -> float:
-    """Seconds to trace the recorded batches through ``scene`` (DISTANCE queries, a thread pool)."""
+def scene_tracer(scene):
+    """A raw embreex scene's DISTANCE query as a ``trace(origins, directions, limit)`` for :func:`replay`."""
+    return lambda origins, directions, limit: scene.run(origins, directions, query="DISTANCE",
+                                                         dists=np.full(len(origins), limit, np.float32))
+
+
+def replay(trace, batches, threads: int) -> float:
+    """Seconds to run ``trace(origins, directions, limit)`` over the recorded batches in a thread pool:
+    :func:`scene_tracer` of a raw scene, or a thickbake engine's ``first_hit`` (its trace stage alone)."""
     def run(batch):
-        origins, directions, limit = batch
-        return scene.run(origins, directions, dists=np.full(len(origins), limit, np.float32), query="DISTANCE")
-
-    with ThreadPoolExecutor(threads) as pool:
-        t0 = time.perf_counter()
-        list(pool.map(run, batches))
-        return time.perf_counter() - t0
-
-
-def replay_engine(engine, batches, threads: int) -> float:
-    """Seconds for a thickbake engine's ``first_hit`` (the bake's trace stage alone) over the batches."""
-    def run(batch):
-        origins, directions, limit = batch
-        return engine.first_hit(origins, directions, limit)
+        return trace(*batch)
 
     with ThreadPoolExecutor(threads) as pool:
         t0 = time.perf_counter()
@@ -170,11 +164,11 @@ def bench_throughput(asset, size: int, rays: int, threads: int, c_rays: int, rou
     # ``rounds`` times, and keep each one's best time (the run least disturbed by other work)
     best = {"A": math.inf, "A_robust": math.inf, "B": math.inf, "B_robust": math.inf, "G": math.inf}
     for _ in range(rounds):
-        best["A"] = min(best["A"], replay(fast_scene, batches, threads))
-        best["G"] = min(best["G"], replay_engine(guarded_engine, batches, threads))
+        best["A"] = min(best["A"], replay(scene_tracer(fast_scene), batches, threads))
+        best["G"] = min(best["G"], replay(guarded_engine.first_hit, batches, threads))
         seconds, b_result = end_to_end(threads)
         best["B"] = min(best["B"], seconds)
-        best["A_robust"] = min(best["A_robust"], replay(robust_scene, batches, threads))
+        best["A_robust"] = min(best["A_robust"], replay(scene_tracer(robust_scene), batches, threads))
         seconds, br_result = end_to_end(threads, robust_engine)
         best["B_robust"] = min(best["B_robust"], seconds)
     a_seconds, a_robust_seconds, b_seconds, br_seconds = best["A"], best["A_robust"], best["B"], best["B_robust"]

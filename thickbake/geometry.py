@@ -77,6 +77,16 @@ def expand_ranges(count: np.ndarray) -> np.ndarray:
     return np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
 
 
+def triangle_edges(faces: np.ndarray, *, directed: bool = False) -> np.ndarray:
+    """(3f, 2) int64 edges of (f, 3) triangles, face by face: (v0, v1), (v1, v2), (v2, v0).
+
+    ``directed`` keeps each edge in the face's winding order; otherwise each row is sorted, so the two
+    faces sharing an edge give the same row whatever their winding.
+    """
+    edges = np.asarray(faces, np.int64)[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
+    return edges if directed else np.sort(edges, axis=1)
+
+
 def unique_rows(rows: np.ndarray, *, return_index: bool = False, return_inverse: bool = False,
                 return_counts: bool = False):
     """``np.unique(rows, axis=0, ...)`` for (n, k) integer rows, through one int64 key per row.
@@ -129,4 +139,4 @@ def _row_keys(rows: np.ndarray) -> np.ndarray | None:
 
 
 __all__ = ["triangle_cross", "double_areas", "unit_normals", "uv_areas", "pixel_bounds", "expand_ranges",
-           "unique_rows"]
+           "triangle_edges", "unique_rows"]

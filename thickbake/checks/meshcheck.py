@@ -36,7 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from thickbake.constants import BIAS_DIAGONAL_FRACTION, EDGE_MARGIN_BIASES, PARITY_STEP_FRACTION
-from thickbake.geometry import double_areas, triangle_cross, unit_normals
+from thickbake.geometry import double_areas, triangle_cross, triangle_edges, unit_normals
 
 
 @dataclass
@@ -77,7 +77,7 @@ def _manifold_adjacency(faces: np.ndarray):
     same_direction : (m,) bool
         True when both faces traverse the shared edge the same way (inconsistent winding).
     """
-    directed = faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
+    directed = triangle_edges(faces, directed=True)
     owner = np.repeat(np.arange(len(faces)), 3)
     key = np.sort(directed, axis=1)
     forward = directed[:, 0] < directed[:, 1]

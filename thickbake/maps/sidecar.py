@@ -744,7 +744,7 @@ def _bad_field(path: Path, name: str, value: Any, allowed: str) -> ThickbakeErro
 
 
 __all__ = ["SIDECAR_SUFFIX", "sidecar_path", "encoding_entry", "medium_encoding_entry", "build_sidecar", "gltf_hint",
-           "with_error_map", "with_batch_record", "with_map_checksum", "channel_entry", "packed_sidecar",
+           "with_exr_sample_type", "with_error_map", "with_unprojected_mask", "with_batch_record", "with_map_checksum", "channel_entry", "packed_sidecar",
            "packed_record", "Encoding", "BatchRecord", "batch_record", "MapOf", "read_map_of", "MediumRecord",
            "read_medium", "Sidecar", "read_sidecar", "parse_sidecar", "Channel", "PackedSidecar", "is_packed",
            "parse_packed_sidecar", "parse_any_sidecar", "read_batch_sidecar", "DECODE_KEYS", "decode_attributes",

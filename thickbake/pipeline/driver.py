@@ -776,8 +776,8 @@ def _needs_more(moments: Moments, rows: np.ndarray, block: np.ndarray, target: f
     the active samples of the tile (:func:`thickbake.pipeline.measures.prior_dof`, each compared with
     its block), as the map's moderation estimates one d₀ per map: one block's 16·supersample² samples
     are far too few to estimate a spread of spreads.  An adaptive bake's tiles are cut for
-    :data:`ADAPTIVE_TILE_RAYS`, not the run's ``chunk_rays``, so the map does not depend on it.  An own variance on R − 1 = 3 degrees of freedom alone is noisy
-    both ways: a thin-wall sample whose few rays all missed the rare long grazing chords reports a tiny
+    :data:`ADAPTIVE_TILE_RAYS`, not the run's ``chunk_rays``, so the map does not depend on it.  An
+    own variance on R − 1 = 3 degrees of freedom alone is noisy both ways: a thin-wall sample whose few rays all missed the rare long grazing chords reports a tiny
     spread and would stop with a large error, while of the samples whose true error just meets the
     target 39% report one above it (P(χ²₃/3 > 1) = 0.39) and trace on.  Neighbours see nearly the
     same integrand with independent randomisations, so where they agree the decision rests on many

@@ -20,6 +20,7 @@ import numpy as np
 
 from thickbake.constants import UNIFORM_SCALE_TOLERANCE
 from thickbake.errors import ThickbakeError
+from thickbake.geometry import unique_rows
 
 #: UDIM tiles per row of the layout, and the number of the tile at (0, 0) (MaterialX v1.39).
 UDIM_COLUMNS = 10
@@ -107,7 +108,7 @@ def map_groups(asset, uv_set: int = 0) -> tuple[list[MapGroup], list[str]]:
     material = asset.face_material if asset.face_material is not None else np.zeros(len(has_uv), np.int64)
     materials = asset.materials or []
     groups = []
-    pairs = np.unique(np.stack([material[usable], tile[usable]], axis=1), axis=0)
+    pairs = unique_rows(np.stack([material[usable], tile[usable]], axis=1))
     order = sorted(((int(m), int(t)) for m, t in pairs), key=lambda mt: (_material_order(materials, mt[0]), mt[1]))
     for m, t in order:
         faces = usable & (material == m) & (tile == t)

@@ -42,7 +42,8 @@ from thickbake.errors import ThickbakeError
 from thickbake.inputs import check_regular_file, iter_regular_file, read_regular_file
 from thickbake.pipeline.validate import check_glb, check_gltf, check_gltf_document, check_obj, check_ply, confined_resolver
 from thickbake.pipeline.readers import Material, Part, ReadResult, apply_transform, read_gltf, read_obj, transform_scale
-from thickbake.geometry import double_areas, expand_ranges, triangle_cross, unique_rows, unit_normals, uv_areas
+from thickbake.geometry import (double_areas, expand_ranges, triangle_cross, triangle_edges, unique_rows, unit_normals,
+                                uv_areas)
 
 MESH_SUFFIXES = (".obj", ".glb", ".gltf", ".ply", ".off", ".stl")
 #: Corners whose faces meet at more than this angle keep separate normals when the file carries none.
@@ -624,8 +625,7 @@ class _Topology:
 def _topology(vertices: np.ndarray, faces: np.ndarray) -> _Topology:
     """Open edges (used once), edges shared by more than two faces and winding consistency of (f, 3)
     int64 faces over (m, 3) float64 vertices."""
-    edges = np.sort(faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    unique_edges, edge_counts = unique_rows(edges, return_counts=True)
+    unique_edges, edge_counts = unique_rows(triangle_edges(faces), return_counts=True)
     boundary = unique_edges[edge_counts == 1]
     non_manifold = int((edge_counts > 2).sum())
     boundary_length = float(np.linalg.norm(vertices[boundary[:, 0]] - vertices[boundary[:, 1]], axis=1).sum())
@@ -718,8 +718,7 @@ def signed_volume(vertices: np.ndarray, faces: np.ndarray) -> float:
 
 def _winding_consistent(faces: np.ndarray) -> bool:
     """True when no directed edge is used twice (two neighbours traversing it the same way)."""
-    directed = faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
-    _, counts = unique_rows(directed, return_counts=True)
+    _, counts = unique_rows(triangle_edges(faces, directed=True), return_counts=True)
     return bool((counts == 1).all())
 
 

@@ -37,7 +37,6 @@ from thickbake.geometry import expand_ranges
 from thickbake.inputs import confined_path, read_regular_file
 
 
-
 @dataclass
 class Part:
     """One piece of an asset in world space: a glTF primitive under one node, an OBJ object/group,

@@ -18,7 +18,7 @@ from typing import Protocol, runtime_checkable
 import numpy as np
 
 from thickbake.constants import EDGE_MARGIN_ULPS
-from thickbake.geometry import unique_rows
+from thickbake.geometry import triangle_edges, unique_rows
 
 
 @runtime_checkable
@@ -323,8 +323,7 @@ def closed_surface(faces: np.ndarray) -> bool:
     faces = np.asarray(faces, np.int64)
     if len(faces) == 0:
         return False
-    edges = np.sort(faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    _, counts = unique_rows(edges, return_counts=True)
+    _, counts = unique_rows(triangle_edges(faces), return_counts=True)
     return bool((counts == 2).all())
 
 
